@@ -1,0 +1,2 @@
+"""Device backends: one small interface (`harness.backends.base.Backend`) that the
+simulated board, the audio interface and the lab-instrument paths implement."""
