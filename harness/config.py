@@ -44,6 +44,10 @@ def load_toml(path: str | Path) -> tuple[dict, bytes]:
         data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
         raise ConfigError(str(p), None, f"TOML syntax error: {exc}") from None
+    except ValueError as exc:  # tomllib lets int() errors escape (over 4300 digits)
+        raise ConfigError(str(p), None, f"TOML value not readable: {exc}") from None
+    except RecursionError:  # tomllib recurses on nested arrays / inline tables
+        raise ConfigError(str(p), None, "TOML syntax error: arrays or tables nested too deeply") from None
     return data, raw
 
 
@@ -134,7 +138,10 @@ class Table:
                     max: float | None = None, min_exclusive: bool = False) -> float:
         if isinstance(value, bool) or not isinstance(value, (int, float)):
             raise self.error(name, f"must be a number, got {_type_name(value)} {_show(value)}")
-        value = float(value)
+        try:
+            value = float(value)
+        except OverflowError:  # TOML integers are unbounded; float() of a huge one overflows
+            raise self.error(name, "must be a finite number, got an integer too large for a number") from None
         if not math.isfinite(value):
             raise self.error(name, f"must be a finite number, got {value}")
         if min is not None:

@@ -247,14 +247,17 @@ class PhaseResult:
     def passed(self) -> bool:
         ok = True
         if self.margin_deg.size:
-            ok = ok and bool(np.all(self.margin_deg[np.isfinite(self.margin_deg)] >= 0))
+            # NaN counts only where no limit applies (limit lines with a gap); an
+            # undefined phase under a deviation limit (finite limit_deg) fails
+            limited = ~np.isnan(self.margin_deg) | np.isfinite(self.limit_deg)
+            ok = ok and bool(np.all(self.margin_deg[limited] >= 0))
         if self.group_delay_margin_s is not None and self.group_delay_margin_s.size:
             ok = ok and bool(np.all(self.group_delay_margin_s >= 0))
         return ok
 
     @property
     def worst_margin_deg(self) -> float:
-        m = self.margin_deg[np.isfinite(self.margin_deg)]
+        m = self.margin_deg[~np.isnan(self.margin_deg)]
         return float(np.min(m)) if m.size else float("nan")
 
 
@@ -273,7 +276,8 @@ class MaskResult:
 
     @property
     def gain_passed(self) -> bool:
-        m = self.margin_db[np.isfinite(self.margin_db)]
+        # NaN means "no limit here"; -inf (zero gain under a lower limit) must fail
+        m = self.margin_db[~np.isnan(self.margin_db)]
         return bool(np.all(m >= 0.0))
 
     @property
@@ -283,7 +287,7 @@ class MaskResult:
     @property
     def worst_index(self) -> int | None:
         m = np.where(np.isnan(self.margin_db), np.inf, self.margin_db)
-        if not np.any(np.isfinite(self.margin_db)):
+        if np.all(np.isnan(self.margin_db)):
             return None
         return int(np.argmin(m))
 
@@ -422,7 +426,8 @@ class Mask:
             else:
                 with np.errstate(divide="ignore"):
                     ref_db = self.reference_gain_db(f, h)
-            gain_db = gain_db - ref_db
+            with np.errstate(invalid="ignore"):  # -inf - -inf (dead reference) -> NaN
+                gain_db = gain_db - ref_db
         low, high = self.limits(f)
         margin_db = margin(gain_db, low, high)
         bands = self._band_results(f, gain_db)
@@ -454,7 +459,8 @@ def margin(gain_db, low_db, high_db) -> np.ndarray:
     """Signed margin in dB, positive inside ``[low_db, high_db]``; NaN with no limit.
 
     ``margin = min(high_db - gain_db, gain_db - low_db)``, where an infinite limit
-    contributes nothing.
+    contributes nothing. An undefined gain (NaN) under a limit gets margin -inf: it
+    can never count as inside.
     """
     g = np.asarray(gain_db, dtype=float)
     lo = np.asarray(low_db, dtype=float)
@@ -464,6 +470,7 @@ def margin(gain_db, low_db, high_db) -> np.ndarray:
         dn = np.where(np.isfinite(lo), g - lo, np.inf)
     m = np.minimum(up, dn)
     none = ~np.isfinite(lo) & ~np.isfinite(hi)
+    m = np.where(np.isnan(g), -np.inf, m)
     return np.where(none, np.nan, m)
 
 

@@ -418,13 +418,13 @@ def describe_profile(p: Profile) -> str:
     lines.append("  bands:")
     hdr = f"    {'#':>2}  {'kind':<7} {'start Hz':>11} {'stop Hz':>11}"
     if fs:
-        hdr += f" {'start rad/s':>11} {'stop rad/s':>11}"
+        hdr += f" {'start rad/sample':>16} {'stop rad/sample':>16}"
     hdr += "  limits"
     lines.append(hdr)
     for i, b in enumerate(p.mask.bands):
         row = f"    {i:>2}  {b.kind:<7} {b.start_hz:>11.6g} {b.stop_hz:>11.6g}"
         if fs:
-            row += f" {2 * math.pi * b.start_hz / fs:>11.5f} {2 * math.pi * b.stop_hz / fs:>11.5f}"
+            row += f" {2 * math.pi * b.start_hz / fs:>16.6f} {2 * math.pi * b.stop_hz / fs:>16.6f}"
         row += "  " + b.describe() + (f"  [{b.label}]" if b.label else "")
         lines.append(row)
     if p.mask.transition_max_db is not None:
