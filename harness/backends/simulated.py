@@ -32,25 +32,28 @@ Signal chain of one ``play_and_capture`` (all rates are the station rate fs unle
 
 Analog filters
 --------------
-The analog prototype (zpk in rad/s) is simulated at an oversampled rate ``U * fs``
-(U a power of two chosen so that U * fs is about 1.5 MHz, between 8 and 128; 32 at
-48 kHz, 8 at 192 kHz): interpolate by U in two polyphase stages
-(scipy.signal.upfirdn; x2 with a Kaiser FIR passing 0..0.45 fs and stopping from 0.5 fs
-at 120 dB, then x U/2 passing 0..0.5 fs and stopping from 1.5 fs), filter with the
-bilinear transform prewarped at the filter's cutoff (or band centre; clamped to
-0.45 fs), decimate back through the same two stages. All resampling FIRs are linear
-phase and their delays are removed, so they contribute a real (zero-phase) factor. The
-stopbands start where images and aliases would land, so for any sine below fs/2 the
-response is exactly ``A(f)**2 B(f)**2 H_bilinear(f)`` (up to the 120 dB stopbands, about
-1e-12 relative), which `true_response` computes from the FIR taps and
-scipy.signal.sosfreqz. Residual vs the ideal analog response (freqs_zpk) over
-0..0.45 fs, dominated by bilinear frequency warping (which grows as f**2 / (U fs)**2),
-measured in tests/test_simulated.py: max ``|H_true - H_ideal|`` below 1.5e-3 (relative
-to unity gain) at 48 kHz for the 6th-order Butterworth and elliptic anti-alias models
-(0.01 dB / 0.07 deg where |H| > -20 dB), below 3e-4 for the 2 kHz crossover, and below
-2e-3 for the 40 kHz band-pass at 192 kHz. Between 0.45 fs and fs/2 the resampling FIRs
-roll the response off (-6 dB at 0.475 fs, about -120 dB at fs/2), as the decimation
-filters of a real converter do; `true_response` includes that exactly.
+The analog prototype (zpk in rad/s) is simulated at an oversampled rate ``U * fs``:
+interpolate by U in two polyphase stages (scipy.signal.upfirdn; x2 with a Kaiser FIR
+passing 0..0.45 fs and stopping from 0.5 fs at 120 dB, then x U/2 passing 0..0.5 fs and
+stopping from 1.5 fs), filter with the bilinear transform prewarped at the filter's
+cutoff (or band centre; clamped to 0.45 fs), decimate back through the same two stages.
+The resampling FIRs are linear phase with their delays removed, so they contribute a
+real (zero-phase) factor, and their stopbands start where images and aliases would
+land, so for any sine below fs/2 the response is exactly ``A(f)**2 B(f)**2
+H_bilinear(f)`` (up to the 120 dB stopbands), which `true_response` computes from the
+FIR taps and scipy.signal.sosfreqz.
+
+The residual vs the ideal analog response (scipy.signal.freqs_zpk) over 0..0.45 fs is
+bilinear frequency warping, growing as (f / (U fs))**2. U is the smallest power of two
+from 8 to 128 that keeps ``max |H_true - H_ideal|`` below `ANALOG_RESIDUAL_TARGET` = 2e-3
+of the peak gain (0.017 dB / 0.12 deg where the gain is near 0 dB); the achieved value is
+``board.analog_residual``. Measured for the fixtures (tests/test_simulated.py): KA-200
+6th-order Butterworth 18 kHz at 48 kHz, U = 32, 8.1e-4 (0.009 dB, 0.06 deg where
+|H| > -20 dB); KA-210 elliptic, U = 32, 1.1e-3; KX-2 crossover, U = 16, 6.8e-4;
+KU-40 40 kHz band-pass at 192 kHz, U = 16, 1.5e-3. Between 0.45 fs and fs/2 the
+resampling FIRs roll the response off (-0.25 dB at 0.46 fs, -12 dB at 0.475 fs, about
+-75 dB at 0.49 fs), as the decimation filters of a real converter do; `true_response`
+includes that exactly. Cost: about 0.1 s of CPU per second of 48 kHz signal at U = 32.
 
 Fractional latency
 ------------------
