@@ -56,6 +56,7 @@ clip_level, third_order_distortion, dropout_at_s, dropout_samples, fault, seed.
 from __future__ import annotations
 
 import dataclasses
+import difflib
 import json
 import math
 import re
@@ -793,7 +794,6 @@ def generate_lot(nominal: DeviceModel, n: int, *, spread: dict | None = None, se
     sp = dict(DEFAULT_SPREAD)
     for key, value in (spread or {}).items():
         if key not in DEFAULT_SPREAD:
-            import difflib
             near = difflib.get_close_matches(key, list(DEFAULT_SPREAD), n=1, cutoff=0.6)
             hint = f"; did you mean '{near[0]}'?" if near else f"; known keys: {', '.join(DEFAULT_SPREAD)}"
             raise ConfigError(None, f"spread.{key}", f"unknown key{hint}")
