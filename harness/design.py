@@ -263,7 +263,10 @@ class FilterDesign:
     def order(self) -> int:
         """Filter order: the degree of the transfer function (sections summed for sos)."""
         if self.format == "sos":
-            return int(sum(max(_degree(r[:3], self.digital), _degree(r[3:], self.digital)) for r in self.sos))
+            # degrees add up over the cascade (a section may carry two zeros and one pole)
+            nb = sum(_degree(r[:3], self.digital) for r in self.sos)
+            na = sum(_degree(r[3:], self.digital) for r in self.sos)
+            return int(max(nb, na))
         if self.format == "ba":
             return int(max(_degree(self.b, self.digital), _degree(self.a, self.digital)))
         return int(max(self.zeros.size, self.poles.size))
@@ -311,8 +314,10 @@ class FilterDesign:
     def group_delay_s(self, freq_hz) -> np.ndarray:
         """Exact group delay ``-d(phase)/d(omega)`` in seconds at `freq_hz`.
 
-        A digital ``ba`` design uses scipy.signal.group_delay. Every other design uses
-        the analytic sum over its poles and zeros, ``tau = -Im(d/domega ln H)``:
+        A digital ``ba`` design uses scipy.signal.group_delay, unless scipy warns that
+        its result is unreliable (singular points, ill-conditioned high-order
+        polynomials). Every other case uses the analytic sum over the poles and zeros,
+        ``tau = -Im(d/domega ln H)``:
         digital, with x = e^{j omega}: ``tau = [sum_p Re(x/(x - p)) - sum_z Re(x/(x - z))] / fs``;
         analog, with s = j Omega: ``tau = sum_p Re(1/(s - p)) - sum_z Re(1/(s - z))``.
         Exactly at a zero on the unit circle (or on the imaginary axis) the phase jumps
@@ -322,10 +327,14 @@ class FilterDesign:
         if f.size == 0:
             return np.zeros(0)
         if self.digital and self.format == "ba":
-            with warnings.catch_warnings():
-                warnings.simplefilter("ignore")   # singular points (zeros on the circle) -> 0
+            with warnings.catch_warnings(record=True) as caught:
+                warnings.simplefilter("always")
                 _, gd = signal.group_delay((self.b, self.a), w=f, fs=self.sample_rate_hz)
-            return np.asarray(gd, float) / self.sample_rate_hz
+            if not caught:
+                return np.asarray(gd, float) / self.sample_rate_hz
+            # scipy warns when its polynomial ratio is singular or ill-conditioned (a zero
+            # on the unit circle, or a high-order polynomial: an 8th-order elliptic b/a
+            # already gives it negative delays); the analytic sum is used there instead
         return _group_delay_zpk(self.zeros, self.poles, f, self.sample_rate_hz)
 
     def critical_freqs_hz(self) -> np.ndarray:
@@ -1252,9 +1261,12 @@ def evaluate_design(design: FilterDesign, mask: Mask, *, points: int = 4000, tol
        frequency, and the critical frequencies of the poles and zeros
        (`FilterDesign.critical_freqs_hz`), where a narrow notch or resonance is centred.
     2. Refinement: for every band (and the transition ceiling) separately, each local
-       minimum of the band's margin on the grid whose neighbourhood is not already
-       certified (step 3) is refined by ``scipy.optimize.minimize_scalar`` (bounded,
-       between the neighbouring grid points), and the minimiser is added to the points.
+       minimum of the band's margin on the grid is refined by
+       ``scipy.optimize.minimize_scalar`` (bounded, between the neighbouring grid
+       points) and the minimiser is added to the points - except the local minima
+       whose neighbouring intervals are proved (step 3) to hold nothing below the band's
+       current worst margin, which cannot matter (this skips, e.g., the thousands of
+       rounding-noise minima deep in a stop band).
     3. Certification: for every interval between neighbouring evaluated frequencies
        a rigorous lower bound of the margin inside it is computed from the pole/zero
        form, the larger of
@@ -1333,12 +1345,11 @@ def evaluate_design(design: FilterDesign, mask: Mask, *, points: int = 4000, tol
         bad = np.zeros(F.size - 1, bool)
         gap = 0.0
         todo = np.flatnonzero(~cert)
-        worst_by_set = []
+        new = []
         for si, ls in enumerate(sets):
             m = ls.margin(F, G)
             finite = m[~np.isnan(m)]
             worst = float(np.min(finite)) if finite.size else np.inf
-            worst_by_set.append((m, worst))
             if not todo.size:
                 continue
             w = F[todo + 1] - F[todo]
@@ -1351,23 +1362,15 @@ def evaluate_design(design: FilterDesign, mask: Mask, *, points: int = 4000, tol
             bad[idx[short]] = True
             if np.any(short):
                 gap = max(gap, float(worst - np.min(lb[short])))
-        cert = ~bad
-        if not bad.any():
-            certified = True
-            gap = 0.0
-            break
-        if n_cert >= max_points:
-            break
-        new = []
-        # step 2: refine local minima next to uncertified intervals
-        for si, ls in enumerate(sets):
-            m, worst = worst_by_set[si]
+            # step 2: refine every local minimum next to an interval that might hold a
+            # margin below the band's current worst (lb < worst); others cannot matter
+            hot = np.zeros(F.size - 1, bool)
+            hot[idx[lb < worst]] = True
             mm = np.where(np.isnan(m), np.inf, m)
             left = np.concatenate([[np.inf], mm[:-1]])
             right = np.concatenate([mm[1:], [np.inf]])
             locmin = np.flatnonzero(np.isfinite(mm) & (mm <= left) & (mm <= right))
-            cand = [i for i in locmin
-                    if (i > 0 and bad[i - 1]) or (i < bad.size and bad[i])]
+            cand = [i for i in locmin if (i > 0 and hot[i - 1]) or (i < hot.size and hot[i])]
             cand.sort(key=lambda i: mm[i])
             for i in cand[:400]:
                 lo_f = F[i - 1] if i > 0 and np.isfinite(mm[i - 1]) else F[i]
@@ -1379,6 +1382,12 @@ def evaluate_design(design: FilterDesign, mask: Mask, *, points: int = 4000, tol
                 if x is not None:
                     new.append(x)
                     n_ref += 1
+        cert = ~bad
+        certified = not bad.any()
+        if certified and not new:
+            break
+        if n_cert >= max_points:
+            break
         # step 3: split uncertified intervals in four
         ib = np.flatnonzero(bad)
         a, b = F[ib], F[ib + 1]
@@ -1619,6 +1628,13 @@ def run_design_check(profile_path, coeffs_path, *, quantize: str | None = None, 
     return 0 if ok else 1
 
 
+def _fm(m: float, width: int) -> str:
+    """A margin in dB: 4 decimals, or scientific when it would show as +-0.0000."""
+    if m != 0 and abs(m) < 5e-5:
+        return f"{m:>+{width}.1e}"
+    return f"{m:>+{width}.4f}"
+
+
 def _fmt_range(b: BandResult) -> str:
     if b.index < 0:
         return "between bands"
@@ -1643,15 +1659,15 @@ def _band_table(res: DesignResult, qres: DesignResult | None, qrep: QuantReport 
             lines.append(row)
             continue
         if qres is None:
-            lines.append(f"  {_idx(b):>4}  {kind:<10} {_fmt_range(b):<22} {lim:<18} {b.worst_margin_db:>+15.4f} "
+            lines.append(f"  {_idx(b):>4}  {kind:<10} {_fmt_range(b):<22} {lim:<18} {_fm(b.worst_margin_db, 15)} "
                          f"{b.worst_freq_hz:>12.6g} {b.worst_gain_db:>+10.4f}  {'pass' if b.passed else 'FAIL'}")
         else:
             qb = qres.bands[i]
             cost = b.worst_margin_db - qb.worst_margin_db
             verdict = ("pass" if b.passed else "FAIL") + "/" + ("pass" if qb.passed else "FAIL")
-            lines.append(f"  {_idx(b):>4}  {kind:<10} {_fmt_range(b):<22} {lim:<18} {b.worst_margin_db:>+13.4f} "
-                         f"{b.worst_freq_hz:>12.6g} {qb.worst_margin_db:>+13.4f} {qb.worst_freq_hz:>12.6g} "
-                         f"{cost:>+9.4f}  {verdict}")
+            lines.append(f"  {_idx(b):>4}  {kind:<10} {_fmt_range(b):<22} {lim:<18} {_fm(b.worst_margin_db, 13)} "
+                         f"{b.worst_freq_hz:>12.6g} {_fm(qb.worst_margin_db, 13)} {qb.worst_freq_hz:>12.6g} "
+                         f"{_fm(cost, 9)}  {verdict}")
     if qres is not None:
         lines.append(f"  (cost = float margin - quantised margin; result float/{qrep.qformat.spec})")
     return "\n".join(lines) + "\n"
