@@ -1501,11 +1501,14 @@ def _continuous_phase(design: FilterDesign, freq_hz) -> np.ndarray:
     omega = 2 * np.pi * f / design.sample_rate_hz if design.digital else None
 
     def arg_factor(c):
+        # a root on the unit circle (imaginary axis), up to rounding, is taken as just
+        # inside (left of) it: its phase then steps up by pi where x passes it, the limit
+        # of a minimum-phase root, so a notch returns to its starting phase
         if design.digital:
-            if abs(c) < 1:
+            if abs(c) < 1 + 1e-9:
                 return omega + np.angle(1 - c / x)
             return np.angle(-c) + np.angle(1 - x / c)
-        if c.real > 0:
+        if c.real > 1e-9 * abs(c):
             return np.pi + np.angle(c - x)
         return np.angle(x - c)
 
@@ -1514,6 +1517,10 @@ def _continuous_phase(design: FilterDesign, freq_hz) -> np.ndarray:
             ph = ph + arg_factor(c)
         for c in design.poles:
             ph = ph - arg_factor(c)
+    if ph.size and np.isfinite(ph[0]):
+        # each factor's formula fixes its phase only up to 2 pi; like the mask's phase
+        # rules, start in (-pi, pi] at the lowest frequency
+        ph = ph - 2 * np.pi * np.ceil((ph[0] - np.pi) / (2 * np.pi))
     return ph
 
 

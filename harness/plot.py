@@ -23,6 +23,7 @@ from pathlib import Path
 from typing import Any, Sequence
 
 import numpy as np
+from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
 from matplotlib.ticker import EngFormatter, LogLocator, NullFormatter
 
@@ -116,6 +117,21 @@ def bode_plot(mask: Mask, freq_hz, gain_db, *, path, phase_deg=None, group_delay
     Path or None
         The written path (None when `path` is a file object).
     """
+    fig, _ = bode_figure(mask, freq_hz, gain_db, phase_deg=phase_deg, group_delay_s=group_delay_s,
+                         phase_freq_hz=phase_freq_hz, u_gain_db=u_gain_db, u_phase_deg=u_phase_deg,
+                         verdicts=verdicts, style=style, label=label, title=title, subtitle=subtitle,
+                         extra=extra, annotate_worst=annotate_worst, lower=lower, dpi=dpi)
+    return _save(fig, path)
+
+
+def bode_figure(mask: Mask, freq_hz, gain_db, *, phase_deg=None, group_delay_s=None,
+                phase_freq_hz=None, u_gain_db=None, u_phase_deg=None, verdicts=None,
+                style: str = "auto", label: str | None = None, title: str = "", subtitle: str = "",
+                extra: Sequence[Trace] = (), annotate_worst: bool = True, lower: str = "auto",
+                dpi: int = 120):
+    """The figure `bode_plot` writes, without writing it: ``(figure, axes)`` where
+    ``axes`` maps 'main', and when drawn 'detail' (pass-band zoom) and 'lower'
+    (phase or group delay) to their matplotlib Axes. Same parameters as `bode_plot`."""
     f = np.asarray(freq_hz, float)
     g = np.asarray(gain_db, float)
     if f.shape != g.shape or f.ndim != 1:
@@ -149,43 +165,61 @@ def bode_plot(mask: Mask, freq_hz, gain_db, *, path, phase_deg=None, group_delay
     lo, hi = mask.limits(xs)
 
     # layout
-    detail = _detail_window(mask, xs, lo, hi, g, f)
-    main_ylim, off_lo, off_hi = _main_ylim(lo, hi, g, [np.asarray(t.gain_db, float) for t in extra])
-    if detail is not None and (detail[1] - detail[0]) > 0.2 * (main_ylim[1] - main_ylim[0]):
-        detail = None
+    main_ylim = _main_ylim(lo, hi, g, [np.asarray(t.gain_db, float) for t in extra])
+    detail = _Detail.build(mask, xs, lo, hi, f, g, main_ylim)
     rows = [("main", 3.2)]
     if detail is not None:
-        rows.append(("detail", 1.7))
+        rows.append(("detail", 1.8))
     if lower != "none":
         rows.append(("lower", 1.9))
     fig = Figure(figsize=(10.0, 1.3 + sum(h for _, h in rows)), dpi=dpi, layout="constrained")
+    FigureCanvasAgg(fig)            # Agg canvas: no display, no pyplot global state
     axes = fig.subplots(len(rows), 1, sharex=True, gridspec_kw={"height_ratios": [h for _, h in rows]})
     axes = np.atleast_1d(axes)
     ax_of = {name: ax for (name, _), ax in zip(rows, axes)}
+    for ax in axes:
+        ax.set_xscale("log")
+        ax.set_xlim(x_lo, x_hi)
 
     handles = {}
-    for name in ("main", "detail"):
-        ax = ax_of.get(name)
-        if ax is None:
-            continue
-        ylim = main_ylim if name == "main" else detail
-        _draw_mask(ax, xs, lo, hi, ylim, handles)
-        _draw_edges(ax, edges, x_lo, x_hi, handles if name == "main" else None)
+    ax = ax_of["main"]
+    _draw_mask(ax, xs, lo, hi, main_ylim, handles)
+    _draw_edges(ax, edges, x_lo, x_hi, handles)
+    for i, t in enumerate(extra):
+        _draw_response(ax, np.asarray(t.freq_hz, float), np.asarray(t.gain_db, float), t.u_gain_db, None,
+                       t.style, t.colour or C_EXTRA[i % len(C_EXTRA)], t.label or f"trace {i + 1}", handles,
+                       main_ylim, zorder=4)
+    _draw_response(ax, f, g, u_gain_db, verdicts, style, C_CURVE, label, handles, main_ylim, zorder=5)
+    ax.set_ylim(*main_ylim)
+    ax.set_ylabel("gain dB")
+    _mark_off_scale(ax, f, g, main_ylim, handles)
+    if annotate_worst:
+        _annotate_worst(ax, mask, f, g, g, main_ylim, handles, main=True)
+
+    if detail is not None:
+        ax = ax_of["detail"]
+        d = detail
+        _draw_mask(ax, xs, d.lo, d.hi, d.ylim, handles)
+        _draw_edges(ax, edges, x_lo, x_hi, None)
         for i, t in enumerate(extra):
-            _draw_response(ax, np.asarray(t.freq_hz, float), np.asarray(t.gain_db, float),
-                           t.u_gain_db, None, t.style, t.colour or C_EXTRA[i % len(C_EXTRA)],
-                           t.label or f"trace {i + 1}", handles, ylim, zorder=4)
-        _draw_response(ax, f, g, u_gain_db, verdicts, style, C_CURVE, label, handles, ylim, zorder=5)
-        ax.set_ylim(*ylim)
-        ax.set_ylabel("gain dB" if name == "main" else "pass band dB")
-        if name == "main":
-            _mark_off_scale(ax, f, g, ylim, handles)
+            tf = np.asarray(t.freq_hz, float)
+            _draw_response(ax, tf, d.shift(mask, tf, np.asarray(t.gain_db, float)), t.u_gain_db, None, t.style,
+                           t.colour or C_EXTRA[i % len(C_EXTRA)], t.label or f"trace {i + 1}", handles, d.ylim,
+                           zorder=4)
+        dev = d.shift(mask, f, g)
+        _draw_response(ax, f, dev, u_gain_db, verdicts, style, C_CURVE, label, handles, d.ylim, zorder=5)
+        ax.set_ylim(*d.ylim)
+        ax.set_ylabel("dB")
+        ax.text(0.005, 0.97, d.caption, transform=ax.transAxes, ha="left", va="top", fontsize=7.5,
+                color="#444444", bbox=dict(boxstyle="square,pad=0.15", fc="white", ec="none", alpha=0.85),
+                zorder=9)
         if annotate_worst:
-            _annotate_worst(ax, mask, f, g, ylim, handles, main=name == "main")
+            _annotate_worst(ax, mask, f, g, dev, d.ylim, handles, main=False)
 
     if lower != "none":
         ax = ax_of["lower"]
-        if mask.phase.active:
+        # tint where a pass-band phase rule or the delay limit applies
+        if mask.phase.rule in ("linear", "zero") or (lower == "group_delay" and mask.phase.max_group_delay_s):
             for b in mask.pass_bands():
                 ax.axvspan(max(b.start_hz, x_lo), b.stop_hz, color=C_OK_FILL, alpha=0.45, lw=0, zorder=0)
         _draw_edges(ax, edges, x_lo, x_hi, None)
@@ -195,7 +229,6 @@ def bode_plot(mask: Mask, freq_hz, gain_db, *, path, phase_deg=None, group_delay
             _draw_phase(ax, mask, pf, np.asarray(phase_deg, float), u_phase_deg, extra, style, handles)
 
     for ax in axes:
-        ax.set_xscale("log")
         ax.set_xlim(x_lo, x_hi)
         ax.grid(True, which="major", color="#d0d0d0", lw=0.6)
         ax.grid(True, which="minor", color="#ececec", lw=0.4)
@@ -221,7 +254,7 @@ def bode_plot(mask: Mask, freq_hz, gain_db, *, path, phase_deg=None, group_delay
     order += [k for k in handles if k not in order]
     fig.legend([handles[k][0] for k in order], [handles[k][1] for k in order], loc="outside lower center",
                ncol=min(5, len(order)), fontsize=8, frameon=False)
-    return _save(fig, path)
+    return fig, ax_of
 
 
 # --------------------------------------------------------------------------------------
@@ -244,7 +277,7 @@ def _finite(*arrays) -> np.ndarray:
 def _main_ylim(lo, hi, g, extras):
     """Y range that shows the limits and the response, without letting a deep notch or
     a far stop band squash the rest: at most 30 dB below the lowest limit (and 150 dB
-    span), points beyond are marked off scale."""
+    span); points beyond are marked off scale."""
     lim = _finite(lo, hi)
     data = _finite(g, *extras)
     if lim.size:
@@ -258,29 +291,64 @@ def _main_ylim(lo, hi, g, extras):
     if lim.size:
         bottom = min(bottom, lim.min() - 3.0)
     span = max(top - bottom, 1.0)
-    y = (bottom - 0.04 * span, top + 0.08 * span)
-    off_lo = data.size and data.min() < y[0]
-    off_hi = data.size and data.max() > y[1]
-    return y, off_lo, off_hi
+    return (bottom - 0.04 * span, top + 0.08 * span)
 
 
-def _detail_window(mask, xs, lo, hi, g, f):
-    """Y range of the pass-band detail panel (None when there is no two-sided window)."""
-    both = np.isfinite(lo) & np.isfinite(hi)
-    if not np.any(both):
-        return None
-    wlo, whi = float(lo[both].min()), float(hi[both].max())
-    height = max(whi - wlo, 0.05)
-    # data inside the windows' frequency span, if not too far out
-    inwin = np.zeros(f.shape, bool)
-    lo_f, hi_f = mask.limits(f) if f.size else (np.zeros(0), np.zeros(0))
-    inwin = np.isfinite(lo_f) & np.isfinite(hi_f)
-    d = g[inwin & np.isfinite(g)]
-    y0, y1 = wlo - 0.35 * height, whi + 0.35 * height
-    if d.size:
-        y0 = min(y0, max(float(d.min()) - 0.1 * height, wlo - 2.5 * height))
-        y1 = max(y1, min(float(d.max()) + 0.1 * height, whi + 2.5 * height))
-    return (y0, y1)
+@dataclass
+class _Detail:
+    """The tolerance-detail panel: the two-sided windows (pass bands, limit lines with
+    both sides) magnified. With windows of one constant centre it shows the gain itself;
+    with sloped windows (weighting curves) it shows the gain minus the window centre,
+    so every window appears as a level band."""
+
+    lo: np.ndarray          # window limits on the mask grid, shifted; +-inf outside windows
+    hi: np.ndarray
+    ylim: tuple
+    constant: bool
+    caption: str
+
+    @classmethod
+    def build(cls, mask, xs, lo, hi, f, g, main_ylim):
+        both = np.isfinite(lo) & np.isfinite(hi)
+        if not np.any(both):
+            return None
+        with np.errstate(invalid="ignore"):      # -inf + inf outside the windows
+            cen = np.where(both, 0.5 * (lo + hi), np.nan)
+            half = np.where(both, 0.5 * (hi - lo), np.nan)
+        constant = float(np.nanmax(cen) - np.nanmin(cen)) < 1e-9
+        off = 0.0 if constant else cen
+        lo_d = np.where(both, lo - off, -np.inf)
+        hi_d = np.where(both, hi - off, np.inf)
+        hw = max(float(np.nanmedian(half)), 0.01)
+        c0 = float(np.nanmin(cen)) if constant else 0.0
+        a = max(float(lo_d[both].min()), c0 - 4 * hw)
+        b = min(float(hi_d[both].max()), c0 + 4 * hw)
+        height = b - a
+        if height > 0.2 * (main_ylim[1] - main_ylim[0]):
+            return None         # the main panel already shows the windows well
+        y0, y1 = a - 0.3 * height, b + 0.3 * height
+        dev = cls._shift(mask, f, g, constant)
+        d = dev[np.isfinite(dev)]
+        if d.size:
+            y0 = min(y0, max(float(d.min()) - 0.1 * height, a - 2.5 * height))
+            y1 = max(y1, min(float(d.max()) + 0.1 * height, b + 2.5 * height))
+        caption = ("detail: gain within the two-sided windows" if constant
+                   else "detail: gain minus the window centre, within the two-sided windows")
+        return cls(lo_d, hi_d, (y0, y1), constant, caption)
+
+    @staticmethod
+    def _shift(mask, f, g, constant):
+        f = np.asarray(f, float)
+        g = np.asarray(g, float)
+        if not f.size:
+            return g
+        lo, hi = mask.limits(f)
+        both = np.isfinite(lo) & np.isfinite(hi)
+        with np.errstate(invalid="ignore"):
+            return np.where(both, g - (0.0 if constant else 0.5 * (lo + hi)), np.nan)
+
+    def shift(self, mask, f, g):
+        return self._shift(mask, f, g, self.constant)
 
 
 def _runs(mask_arr: np.ndarray):
@@ -377,12 +445,16 @@ def _mark_off_scale(ax, f, g, ylim, handles):
                 continue
             labelled.append(x)
             txt = f"{g[j]:.0f} dB" if np.isfinite(g[j]) else ("-inf" if sign < 0 else "+inf")
-            ax.annotate(txt, (f[j], edge), xytext=(0, 6 if sign < 0 else -6), textcoords="offset points",
-                        ha="center", va="bottom" if sign < 0 else "top", fontsize=7, color=C_CURVE, zorder=6,
+            xl = ax.get_xlim()
+            frac = (x - np.log10(xl[0])) / max(np.log10(xl[1]) - np.log10(xl[0]), 1e-9)
+            ha, dx = ("left", 3) if frac < 0.04 else ("right", -3) if frac > 0.96 else ("center", 0)
+            ax.annotate(txt, (f[j], edge), xytext=(dx, 6 if sign < 0 else -6), textcoords="offset points",
+                        ha=ha, va="bottom" if sign < 0 else "top", fontsize=7, color=C_CURVE, zorder=6,
                         bbox=dict(boxstyle="square,pad=0.1", fc="white", ec="none", alpha=0.8))
 
 
-def _annotate_worst(ax, mask, f, g, ylim, handles, *, main: bool):
+def _annotate_worst(ax, mask, f, g, shown, ylim, handles, *, main: bool):
+    """Mark the point of smallest margin (computed from `g`) at its drawn value `shown`."""
     if not f.size:
         return
     lo, hi = mask.limits(f)
@@ -392,17 +464,21 @@ def _annotate_worst(ax, mask, f, g, ylim, handles, *, main: bool):
     j = int(np.nanargmin(np.where(np.isnan(m), np.inf, m)))
     if not (f[j] > 0):
         return
-    gy = g[j] if np.isfinite(g[j]) else ylim[0]
+    gy = shown[j] if np.isfinite(shown[j]) else (ylim[0] if main else np.nan)
+    if not np.isfinite(gy):
+        return
     if not (ylim[0] <= gy <= ylim[1]):
         if not main:
             return
         gy = min(max(gy, ylim[0]), ylim[1])
-    (h,) = ax.plot([f[j]], [gy], marker="o", ms=8, mfc="none", mec=C_BAD, mew=1.6, zorder=7, ls="none")
+    (h,) = ax.plot([f[j]], [gy], marker="o", ms=8, mfc="none", mec=C_BAD, mew=1.6, zorder=7, ls="none",
+                   clip_on=False)
     handles.setdefault("worst", (h, "worst margin"))
     if not main:
         return
-    xl = ax.get_xlim() if ax.get_xlim()[0] > 0 else (f[f > 0].min(), f.max())
-    frac = (np.log10(f[j]) - np.log10(xl[0])) / max(np.log10(xl[1]) - np.log10(xl[0]), 1e-9)
+    xl = ax.get_xlim()
+    lx0 = np.log10(xl[0]) if xl[0] > 0 else np.log10(f[f > 0].min())
+    frac = (np.log10(f[j]) - lx0) / max(np.log10(max(xl[1], f.max())) - lx0, 1e-9)
     yfrac = (gy - ylim[0]) / (ylim[1] - ylim[0])
     dx = -14 if frac > 0.6 else 14
     dy = -22 if yfrac > 0.5 else 22
@@ -476,6 +552,7 @@ def _draw_phase(ax, mask, pf, ph, u, extra, style, handles):
             ax.plot(tf[k], np.asarray(t.phase_deg, float)[k], color=t.colour or C_EXTRA[i % 3], lw=1.0,
                     ls=(0, (5, 2)), zorder=4)
     rule = mask.phase
+    lim_vals = []
     if rule.rule == "limits":
         xs = _mask_grid(mask, max(pf[keep].min(), 1e-12) if np.any(keep) else 1.0, pf.max())
         for line, above in ((rule.upper, True), (rule.lower, False)):
@@ -483,10 +560,18 @@ def _draw_phase(ax, mask, pf, ph, u, extra, style, handles):
                 continue
             v = line.at(xs)
             fin = np.isfinite(v)
+            lim_vals.append(v[fin])
             ax.plot(xs[fin], v[fin], color=C_BAD, lw=1.0, zorder=3)
+            big = 1e4
+            if above:
+                ax.fill_between(xs[fin], v[fin], big, facecolor=(0.78, 0.16, 0.16, 0.07),
+                                edgecolor=(0.78, 0.16, 0.16, 0.45), hatch="////", lw=0, zorder=1)
+            else:
+                ax.fill_between(xs[fin], -big, v[fin], facecolor=(0.78, 0.16, 0.16, 0.07),
+                                edgecolor=(0.78, 0.16, 0.16, 0.45), hatch="////", lw=0, zorder=1)
             handles.setdefault("phaselimit", (ax.plot([], [], color=C_BAD, lw=1.0)[0], "phase limit"))
     ax.set_ylabel("phase deg")
-    vals = _finite(ph[keep])
+    vals = _finite(ph[keep], *lim_vals)
     if vals.size:
         lo, hi = vals.min(), vals.max()
         pad = max(0.08 * (hi - lo), 2.0)
