@@ -38,11 +38,12 @@ import pytest
 
 from harness.errors import EXIT_FAIL, VERDICT_EXIT, ConfigError, HarnessError
 
-# Sample rates the built-in simulated station chooses from (common audio-interface rates,
-# common practice). The simulated interface is flat to 0.45 fs (its resampling filters
-# roll off above; see harness.backends.simulated), so a rate is chosen whose 0.45 fs
-# covers the top of the mask.
-SIM_RATES_HZ = (48000.0, 96000.0, 192000.0, 384000.0, 768000.0)
+# Sample rates the built-in simulated station chooses from (the usual audio-interface
+# rates, common practice). The simulated interface is flat to 0.45 fs (its resampling
+# filters roll off above; see harness.backends.simulated), so the smallest rate whose
+# 0.45 fs covers the top of the mask is chosen, else the highest (the stimulus plan then
+# reports the frequencies it cannot cover).
+SIM_RATES_HZ = (48000.0, 96000.0, 192000.0)
 USABLE_FRACTION_OF_FS = 0.45
 # Built-in simulated station: the maximum output level and Type B standard uncertainties
 # of a good two-input audio interface with a reference input (common practice values).
@@ -75,10 +76,13 @@ def clear_errors(what: str):
     """Turn a harness error (bad file, bad value, level limit, missing calibration) into
     a short pytest failure naming `what`, the file, the key and the problem: no
     traceback wall."""
+    message = None
     try:
         yield
     except HarnessError as exc:
-        pytest.fail(f"{what}: {exc}", pytrace=False)
+        message = f"{what}: {exc}"
+    if message is not None:   # pytest.fail(message, pytrace=False) without the chained original
+        raise pytest.fail.Exception(message, pytrace=False) from None
 
 
 # ======================================================================================
@@ -257,7 +261,11 @@ def _imperfections(base, overrides, src: str):
             merged[f.name] = v
     merged.update(overrides)
     doc = {"device": {"id": "imperfections", "filter": dict(_IDENTITY_FILTER), "imperfections": merged}}
-    return parse_device_model(doc, file=src).imperfections
+    try:
+        return parse_device_model(doc, file=None).imperfections
+    except ConfigError as exc:
+        key = (exc.key or "").removeprefix("device.")
+        raise ConfigError(src, key or "imperfections", exc.problem) from None
 
 
 def filter_spec_from_design(design):
@@ -400,7 +408,7 @@ def make_board(source=None, *, imperfections=None, quantize: str | None = None,
         if design is None:
             design = design_from_board(device, sample_rate_hz)
         design, rep = quantize_design(design, quantize, key="quantize")
-        id = f"{base_name}@{rep.qformat.spec}"
+        id = f"{base_name}-{rep.qformat.spec}"
         device_base, device = device, None
     else:
         device_base = device
@@ -422,7 +430,7 @@ def make_board(source=None, *, imperfections=None, quantize: str | None = None,
             device = dataclasses.replace(device, **changes)
     if imperfections is not None:
         device = dataclasses.replace(device, imperfections=_imperfections(
-            device.imperfections, imperfections, f"{src_name}: imperfections"))
+            device.imperfections, imperfections, f"simulated_board({src_name})"))
     return device
 
 
@@ -688,6 +696,8 @@ class ComplianceResult:
             row("all bands", " | ".join(p.strip() for p in parts) + "  (worst margin per band)")
         shown = set()
         for r in self.reasons:
+            if self.kind == "design" and r.startswith(("band ", "transition ceiling")):
+                continue   # already shown band by band above
             if r not in shown and not (self.verdict == "pass" and r.startswith("every point")):
                 row("reason", r)
                 shown.add(r)
@@ -906,15 +916,15 @@ class ComplianceSession:
                 unit_doc = {"model": ident.get("model"), "firmware": ident.get("firmware")}
                 unit_doc.update(unit or {})
                 res = measure_unit(prof, station, sn, backend=backend, out_dir=self.out_dir, unit=unit_doc,
-                                   calibration=cal, calibration_info=cal_info)
+                                   calibration=cal, calibration_info=cal_info,
+                                   plan=stimulus_plan(prof, station.sample_rate_hz))
             finally:
                 try:
                     backend.close()
                 except Exception:
                     pass
         plot = None
-        if res.verdict != "pass" and res.analysis is not None and getattr(res.analysis, "freq_hz", None) is not None \
-                and res.analysis.freq_hz.size and res.json_path is not None:
+        if res.verdict != "pass" and res.json_path is not None:
             plot = self._write_plot(lambda: _measurement_png(prof, res), res.json_path)
         where = (f"{station.id} ({station.backend}, {station.sample_rate_hz:g} Hz"
                  + (", built-in" if not choice.given else f", {choice.path}") + ")")
@@ -962,7 +972,7 @@ class ComplianceSession:
             name = d.id or (Path(d.source).stem if d.source else "design")
             if quantize is not None:
                 d, qrep = quantize_design(d, quantize, key="quantize")
-                name = f"{name}@{qrep.qformat.spec}"
+                name = f"{name}-{qrep.qformat.spec}"
                 notes.append(f"judged with coefficients rounded to {qrep.qformat.spec} ({qrep.qformat.word_bits}-bit): "
                              f"largest coefficient error {qrep.max_abs_error:.3g}, largest pole shift "
                              f"{qrep.max_pole_shift:.3g}" + ("" if qrep.stable else "; NOT STABLE"))
@@ -999,7 +1009,47 @@ class ComplianceSession:
         return result
 
 
+_PLANS: dict = {}
+_PLAN_CACHE_SIZE = 16
+
+
+def stimulus_plan(profile, sample_rate_hz: float):
+    """The stimulus plan of `profile` at `sample_rate_hz` (harness.stimulus.plan_for_profile),
+    kept for the rest of the session: planning a multitone (crest-factor reduction) costs
+    about as much as measuring, and a test session measures one profile many times.
+    The key is the profile file's path and SHA-256, so an edited profile is planned anew;
+    a profile built in code (no file) is planned every time."""
+    from harness.stimulus import plan_for_profile
+
+    if not profile.path or not profile.sha256:
+        return plan_for_profile(profile, sample_rate_hz)
+    key = (str(profile.path), profile.sha256, float(sample_rate_hz))
+    plan = _PLANS.get(key)
+    if plan is None:
+        plan = plan_for_profile(profile, sample_rate_hz)
+        if len(_PLANS) >= _PLAN_CACHE_SIZE:
+            _PLANS.pop(next(iter(_PLANS)))
+        _PLANS[key] = plan
+    return plan
+
+
+_DATA_PNG = re.compile(r"data:image/png;base64,([A-Za-z0-9+/=]+)")
+
+
 def _measurement_png(profile, res) -> bytes | None:
+    """The certificate's plot as PNG bytes: taken from the HTML report when it embeds
+    one (no second drawing), else drawn (harness.measure.certificate_plot)."""
+    import base64
+
+    if res.html_path is not None:
+        try:
+            m = _DATA_PNG.search(Path(res.html_path).read_text(encoding="utf-8"))
+        except OSError:
+            m = None
+        if m:
+            return base64.b64decode(m.group(1))
+    if res.analysis is None or not getattr(res.analysis, "freq_hz", ()).size:
+        return None
     from harness.measure import certificate_plot
 
     return certificate_plot(profile, res.analysis, res.serial)
@@ -1008,13 +1058,16 @@ def _measurement_png(profile, res) -> bytes | None:
 def _design_png(profile, res, name: str, verdict: str) -> bytes:
     import io
 
+    import numpy as np
+
     from harness.plot import bode_plot
 
     buf = io.BytesIO()
-    bode_plot(profile.mask, res.freq_hz, res.gain_db, phase_deg=res.phase_deg, group_delay_s=res.group_delay_s,
-              phase_freq_hz=res.phase_freq_hz, path=buf, style="curve",
-              title=f"{name}: design check against {profile.id} rev {profile.revision or '-'}: {verdict.upper()}",
-              subtitle=res.design.describe())
+    with np.errstate(invalid="ignore"):   # infinite limits (no lower limit) in the mask drawing
+        bode_plot(profile.mask, res.freq_hz, res.gain_db, phase_deg=res.phase_deg, group_delay_s=res.group_delay_s,
+                  phase_freq_hz=res.phase_freq_hz, path=buf, style="curve",
+                  title=f"{name}: design check against {profile.id} rev {profile.revision or '-'}: {verdict.upper()}",
+                  subtitle=res.design.describe())
     return buf.getvalue()
 
 
