@@ -61,7 +61,7 @@ def calibrate(station: Station, backend, *, when: _dt.datetime | None = None) ->
     plan = plan_for_profile(prof, station.sample_rate_hz)
     stim = np.asarray(plan.signal(), dtype=np.float64)
     assert_level(stim, station.max_output_dbfs)
-    cap = backend.play_and_capture(stim, extra_samples=int(station.max_latency_samples) + 64)
+    cap = backend.play_and_capture(stim, extra_samples=plan.extra_samples(int(station.max_latency_samples)))
     est = estimate_response(plan, cap)
     snr = np.asarray(est.snr_db, dtype=float)
     if np.any(~np.asarray(est.valid, dtype=bool)) or np.any(snr < MIN_SNR_DB):

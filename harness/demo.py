@@ -16,6 +16,8 @@ import sys
 import time
 from pathlib import Path
 
+import numpy as np
+
 from harness.errors import ConfigError
 
 ROOT = Path(__file__).resolve().parent.parent
@@ -27,20 +29,61 @@ CAUTION = ("CAUTION: on real hardware the harness never plays above the station'
            "mains-powered boards under your local electrical-safety rules and licensed practice.")
 
 
-def demo_lot(nominal, units: int, seed: int):
-    """The demo lot: spread units from the lot generator plus one faulty board."""
+def _near_limit(nominal, f_check_hz: float, f_ref_hz: float, target_db: float, note: str,
+                sample_rate_hz: float):
+    """A copy of `nominal` with all its frequencies scaled (component drift) so that the
+    simulated board's true gain at `f_check_hz` relative to `f_ref_hz` is `target_db`
+    (root found with scipy.optimize.brentq)."""
+    from scipy.optimize import brentq
+
+    from harness.backends.simulated import SimulatedBoard
+    from harness.device import _scale_filter
+
+    def rel_db(scale):
+        board = SimulatedBoard(dataclasses.replace(nominal, filter=_scale_filter(nominal.filter, scale, 1.0, 1.0)),
+                               sample_rate_hz)
+        h = board.true_response([f_check_hz, f_ref_hz])
+        return 20 * np.log10(abs(h[0]) / abs(h[1])) - target_db
+
+    scale = brentq(rel_db, 0.9, 1.1, xtol=1e-12)
+    return dataclasses.replace(nominal, filter=_scale_filter(nominal.filter, scale, 1.0, 1.0),
+                               note=f"{note} (all frequencies x{scale:.5f})")
+
+
+def demo_lot(nominal, units: int, seed: int, *, stop_edge_hz: float | None = None,
+             reference_hz: float = 1000.0, stop_ceiling_db: float = -60.0, sample_rate_hz: float = 192000.0):
+    """The demo lot, deterministic for `seed`: spread units from the lot generator (two
+    of them out of tolerance), two boards whose stop-band edge sits within the
+    measurement uncertainty of the ceiling (one just inside, one just outside), and one
+    board with an assembly fault. Serial numbers KA48-2612-0001 upwards."""
     from harness.device import generate_lot
 
-    lot = generate_lot(nominal, max(units - 1, 1), seed=seed, serial_prefix="KA48-2612",
-                       out_of_tolerance=0.3, spread={"cutoff_pct": 0.8})
-    if units > 1:
-        last = lot[-1][1]
-        broken = dataclasses.replace(
-            last, id=f"KA48-2612-{units:04d}",
-            imperfections=dataclasses.replace(last.imperfections, fault="open"),
-            note="assembly fault: output connector not soldered (open)")
-        lot.append((broken.id, broken))
-    return lot[:units]
+    special = []
+    if stop_edge_hz is not None and units >= 6:
+        special.append((3, _near_limit(nominal, stop_edge_hz, reference_hz, stop_ceiling_db - 0.008,
+                                       "drifted: stop-band edge 0.008 dB inside the ceiling", sample_rate_hz)))
+        special.append((6, _near_limit(nominal, stop_edge_hz, reference_hz, stop_ceiling_db + 0.008,
+                                       "drifted: stop-band edge 0.008 dB above the ceiling", sample_rate_hz)))
+    if units >= 2:
+        broken = dataclasses.replace(nominal, imperfections=dataclasses.replace(nominal.imperfections, fault="open"),
+                                     note="assembly fault: output connector not soldered (open)")
+        special.append((units - 1, broken))
+    n_spread = units - len(special)
+    spread_units = [m for _, m in generate_lot(nominal, n_spread, seed=seed, serial_prefix="lot",
+                                               out_of_tolerance=min(2, max(n_spread - 1, 0)),
+                                               spread={"cutoff_pct": 0.5, "oot_cutoff_pct": 6.0,
+                                                       "oot_gain_db": 0.0})] if n_spread > 0 else []
+    models = []
+    special_at = dict(special)
+    it = iter(spread_units)
+    for i in range(units):
+        models.append(special_at[i] if i in special_at else next(it))
+    lot = []
+    for i, m in enumerate(models, 1):
+        serial = f"KA48-2612-{i:04d}"
+        imp = dataclasses.replace(m.imperfections, seed=seed * 100 + i)
+        lot.append((serial, dataclasses.replace(m, id=serial, imperfections=imp)))
+    return lot
 
 
 def run_demo(out_dir: Path, units: int = 10, seed: int = 2612, out=sys.stdout) -> int:
@@ -85,10 +128,13 @@ def run_demo(out_dir: Path, units: int = 10, seed: int = 2612, out=sys.stdout) -
       f"due {cal_doc['due_utc']}  ({cal_path})")
 
     # 2. the lot
-    lot = demo_lot(nominal, units, seed)
     from harness.stimulus import plan_for_profile
 
     plan = plan_for_profile(profile, station.sample_rate_hz)
+    stop = next(b for b in profile.mask.bands if b.kind == "stop")
+    edge = float(min(f for f in plan.freq_hz if f >= stop.start_hz))
+    lot = demo_lot(nominal, units, seed, stop_edge_hz=edge, reference_hz=profile.mask.reference_hz,
+                   stop_ceiling_db=stop.max_db, sample_rate_hz=station.sample_rate_hz)
     p(f"2. measuring {len(lot)} simulated KI-A48 boards: {profile.stimulus.method}, {len(plan.freq_hz)} points, "
       f"{plan.duration_s:.2f} s of stimulus per board")
     results = []

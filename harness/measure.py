@@ -112,7 +112,7 @@ def measure_unit(profile: Profile, station: Station, serial: str, *, backend: Ba
     assert_level(stimulus, station.max_output_dbfs)            # before anything is played
     facts = station_facts(station)
     when = _dt.datetime.now(_dt.timezone.utc)
-    extra = int(station.max_latency_samples) + 64
+    extra = plan.extra_samples(int(station.max_latency_samples))
     try:
         capture = backend.play_and_capture(stimulus, extra_samples=extra)
     except InvalidMeasurement as exc:
