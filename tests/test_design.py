@@ -22,6 +22,7 @@ from harness.cli import main
 from harness.design import (
     FilterDesign,
     QFormat,
+    _ba_interval_bounds,
     _interval_bounds,
     evaluate_design,
     load_coefficients,
@@ -321,6 +322,54 @@ def test_interval_bounds_hold_against_brute_force(name):
     assert checked >= 20
 
 
+def test_long_fir_is_certified_from_its_coefficients():
+    """numpy.roots of a 101-tap FIR are far off (roots near 1e15), so the b/a design is
+    certified from its coefficients; the worst point must still match brute force."""
+    b = signal.firwin(101, 12000, fs=FS)
+    d = FilterDesign.from_ba(b, [1.0], FS)
+    # sloped ceiling over the pass band: a unique interior worst ripple peak
+    mask = Mask((Band("limits", 10, 10000, upper=LimitLine((10, 10000), (0.02, 0.03)),
+                      lower=LimitLine((10, 10000), (-0.5, -0.5))),
+                 Band("stop", 14000, 24000, max_db=-50.0)), sample_rate_hz=FS)
+    res = evaluate_design(d, mask)
+    bm, bf, f, m = brute_force("ba", (b, [1.0]), mask, FS)
+    assert res.certified
+    assert res.worst_margin_db <= bm + 1e-9
+    assert res.worst_margin_db == pytest.approx(bm, abs=1e-4)
+
+
+def test_deep_stop_band_is_proved_safe_not_refined():
+    # Parks-McClellan FIR: about -190 dB in the stop band, 140 dB below the ceiling
+    b = signal.remez(151, [0, 10000, 14000, 24000], [1, 0], fs=FS)
+    mask = Mask((Band("pass", 0, 10000, min_db=-0.5, max_db=0.5), Band("stop", 14000, 24000, max_db=-50.0)),
+                sample_rate_hz=FS)
+    res = evaluate_design(FilterDesign.from_ba(b, [1.0], FS), mask)
+    assert res.certified and res.passed
+    assert set(res.loose_db) == {1}
+    assert 1.0 <= res.loose_db[1] <= res.bands[1].worst_margin_db
+    # the proved bound is a true lower bound (scipy, brute force)
+    _, _, f, m = brute_force("ba", (b, [1.0]), mask, FS)
+    assert np.min(m[f >= 14000]) >= res.loose_db[1]
+
+
+@pytest.mark.parametrize("kind", ["fir", "iir"])
+def test_coefficient_bounds_hold_against_brute_force(kind):
+    if kind == "fir":
+        b, a = signal.firwin(61, 9000, fs=FS), np.array([1.0])
+    else:
+        b, a = signal.ellip(6, 0.5, 50, 3000, fs=FS)
+    d = FilterDesign.from_ba(b, a, FS)
+    rng = np.random.default_rng(3)
+    fa = rng.uniform(1, 23000, 80)
+    fb = np.minimum(fa + 10 ** rng.uniform(-3, 2.7, fa.size), 24000)
+    ub, lb = _ba_interval_bounds(d, fa, fb)
+    for x0, x1, u, lo in zip(fa, fb, ub, lb):
+        x = np.linspace(x0, x1, 301)
+        mag = np.abs(signal.freqz(b, a, worN=x, fs=FS)[1])
+        assert np.all(mag <= 10 ** (u / 20) * (1 + 1e-9) + 1e-13)
+        assert np.all(mag >= 10 ** (lo / 20) * (1 - 1e-9) - 1e-13)
+
+
 def test_group_delay_analytic_matches_scipy_and_textbook():
     # a 4th-order elliptic band-pass at fs/8: well conditioned enough for scipy's b/a formula
     b, a = signal.ellip(2, 0.5, 40, [5000, 7000], btype="bandpass", fs=FS)
@@ -353,6 +402,11 @@ def test_group_delay_analytic_matches_scipy_and_textbook():
     # FIR b = [1, 1]: linear phase, half a sample of delay (textbook)
     d = FilterDesign.from_ba([1.0, 1.0], [1.0], FS)
     np.testing.assert_allclose(d.group_delay_s(f[f < 20000]), 0.5 / FS, rtol=1e-9)
+    # a symmetric N-tap FIR has linear phase with delay (N - 1)/2 samples (textbook);
+    # firwin's stop-band zeros sit on the unit circle, where scipy's group_delay warns
+    d = FilterDesign.from_ba(signal.firwin(101, 12000, fs=FS), [1.0], FS)
+    fp = np.linspace(10, 11000, 300)
+    np.testing.assert_allclose(d.group_delay_s(fp), 50.0 / FS, rtol=1e-9)
 
 
 def test_critical_frequencies_include_the_notch_and_pole_angles():
