@@ -821,3 +821,77 @@ def test_cli_points_option_is_validated(tmp_path, capsys):
     prof, path, n = _lowpass_files(tmp_path, 9)
     assert main(["design-check", str(prof), str(path), "--points", "3"]) == 2
     assert "--points" in capsys.readouterr().err
+
+
+# --------------------------------------------------------------------------------------
+# property: the certified worst margin is never beaten by any frequency
+# --------------------------------------------------------------------------------------
+from hypothesis import given, settings  # noqa: E402
+from hypothesis import strategies as st  # noqa: E402
+
+
+@st.composite
+def random_design_and_mask(draw):
+    """1-3 biquads with poles and zeros anywhere up to very close to the unit circle
+    (peaks and notches as narrow as 1e-4 rad), or the same as b/a, and a mask of a pass
+    band and a stop band with limits placed near the response so that margins are small."""
+    n = draw(st.integers(1, 3))
+    sos = []
+    for _ in range(n):
+        rp = 1 - 10 ** draw(st.floats(-4, -0.5))
+        tp = draw(st.floats(0.01, 3.1))
+        rz = draw(st.sampled_from([1.0, 0.999, 0.9, 0.5, 1.2]))
+        tz = draw(st.floats(0.01, 3.1))
+        b = np.poly([rz * np.exp(1j * tz), rz * np.exp(-1j * tz)]).real
+        a = np.poly([rp * np.exp(1j * tp), rp * np.exp(-1j * tp)]).real
+        sos.append(np.concatenate([b, a]))
+    sos = np.array(sos)
+    as_ba = draw(st.booleans()) and n <= 2
+    f1 = draw(st.floats(100, 10000))
+    f2 = draw(st.floats(f1 * 1.05, 23000))
+    f = np.linspace(1, 24000, 2001)
+    with np.errstate(divide="ignore"):
+        g = 20 * np.log10(np.abs(signal.sosfreqz(sos, worN=f, fs=FS)[1]))
+    gp = g[(f >= 1) & (f <= f1)]
+    gs = g[f >= f2]
+    lo = float(np.nanmin(np.where(np.isfinite(gp), gp, np.nan))) + draw(st.floats(-1, 1))
+    hi = float(np.nanmax(gp)) + draw(st.floats(-1, 1))
+    hi = max(hi, lo + 0.01)
+    ceil = float(np.nanmax(gs)) + draw(st.floats(-1, 1))
+    mask = Mask((Band("pass", 1, f1, min_db=lo, max_db=hi), Band("stop", f2, 24000, max_db=ceil)),
+                sample_rate_hz=FS)
+    return sos, as_ba, mask
+
+
+@settings(max_examples=40, deadline=None)
+@given(random_design_and_mask(), st.integers(0, 2**31 - 1))
+def test_no_frequency_beats_the_certified_worst_margin(case, seed):
+    sos, as_ba, mask = case
+    if as_ba:
+        b, a = signal.sos2tf(sos)
+        d, kind, coeffs = FilterDesign.from_ba(b, a, FS), "ba", (b, a)
+    else:
+        d, kind, coeffs = FilterDesign.from_sos(sos, FS), "sos", sos
+    res = evaluate_design(d, mask, points=64)
+    assert res.certified
+    rng = np.random.default_rng(seed)
+    # random frequencies, plus dense clusters around every pole/zero angle (where narrow
+    # features live), checked with scipy
+    crit = d.critical_freqs_hz()
+    f = np.concatenate([rng.uniform(1, 24000, 4000)]
+                       + [c + rng.normal(0, 10 ** rng.uniform(-3, 1), 200) for c in crit])
+    f = f[(f >= 1) & (f <= 24000)]
+    with np.errstate(divide="ignore"):
+        g = 20 * np.log10(np.abs(scipy_response(kind, coeffs, f, FS)))
+    lo, hi = mask.limits(f)
+    m = np.minimum(np.where(np.isfinite(hi), hi - g, np.inf), np.where(np.isfinite(lo), g - lo, np.inf))
+    m = m[np.isfinite(lo) | np.isfinite(hi)]
+    assert np.min(m) >= res.worst_margin_db - 1e-4 - 1e-9
+    for br in res.bands:
+        if br.index in res.loose_db:
+            continue
+        band = mask.bands[br.index]
+        inside = (f >= band.start_hz) & (f <= band.stop_hz)
+        mb = (np.minimum(band.max_db - g, g - band.min_db) if band.kind == "pass" else band.max_db - g)[inside]
+        if mb.size and np.all(np.isfinite(mb)):
+            assert np.min(mb) >= br.worst_margin_db - 1e-4 - 1e-9
