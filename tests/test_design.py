@@ -490,6 +490,25 @@ def test_all_digital_formats_give_the_same_response(tmp_path):
     assert (d.id, d.title, d.comment) == ("e", "t", "c")
 
 
+FIXTURES = __import__("pathlib").Path(__file__).resolve().parent.parent / "fixtures" / "coeffs-test"
+
+
+def test_committed_example_files_match_their_scipy_designs():
+    """fixtures/coeffs-test holds one filter in every file form (written by its
+    make_fixtures.py); each must read back as the scipy design it states."""
+    f = np.geomspace(1, 24000, 300)
+    ref = signal.sosfreqz(signal.ellip(4, 0.5, 40, 2000, fs=FS, output="sos"), worN=f, fs=FS)[1]
+    names = ["ka200-ellip4-sos.json", "ka200-ellip4-ba.json", "ka200-ellip4-zpk.json", "ka200-ellip4.csv",
+             "ka200-ellip4-sos.npz"]
+    for name in names:
+        d = load_coefficients(FIXTURES / name)
+        assert d.id == "ka200-dsp-ellip4" and d.order == 4 and d.sample_rate_hz == FS, name
+        np.testing.assert_allclose(d.response(f), ref, rtol=1e-9, atol=1e-13, err_msg=name)
+    d = load_coefficients(FIXTURES / "analog-cheby1-zpk.json")
+    z, p, k = signal.cheby1(5, 1.0, 2 * np.pi * 3000, analog=True, output="zpk")
+    np.testing.assert_allclose(d.response(f), signal.freqs_zpk(z, p, k, worN=2 * np.pi * f)[1], rtol=1e-9)
+
+
 def test_csv_without_sample_rate_takes_the_profile_rate(tmp_path, capsys):
     sos = _ellip_digital()
     path = write(tmp_path, "nofs.csv", "\n".join(",".join(repr(float(x)) for x in row) for row in sos) + "\n")
