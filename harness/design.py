@@ -830,15 +830,20 @@ def _load_npz(p: Path, src: str) -> FilterDesign:
     return FilterDesign.from_zpk(data["z"], data["p"], k, fs, analog=analog, **meta)
 
 
-def check_compatible(design: FilterDesign, mask: Mask, *, profile_id: str = "", profile_path=None) -> None:
+def check_compatible(design: FilterDesign, mask: Mask, *, profile_id: str = "", profile_path=None,
+                     digital_profile: bool | None = None) -> None:
     """Raise ConfigError when a design cannot be scored against a mask: a digital design
     whose sample rate differs from a digital profile's, or a digital design whose Nyquist
     frequency lies below the mask's highest frequency. An analog design against a digital
-    profile is fine (it is evaluated in Hz)."""
+    profile is fine (it is evaluated in Hz). `digital_profile` defaults to "the mask has
+    a sample rate"; an analog profile may carry a converter's sample rate, which a
+    digital design need not share."""
     if not design.digital:
         return
     fs = design.sample_rate_hz
-    pfs = mask.sample_rate_hz
+    if digital_profile is None:
+        digital_profile = mask.sample_rate_hz is not None
+    pfs = mask.sample_rate_hz if digital_profile else None
     who = f"profile {profile_id}" if profile_id else "the profile"
     if pfs is not None and abs(fs - pfs) > 1e-9 * max(fs, pfs):
         raise ConfigError(design.source, "sample_rate_hz",
@@ -1006,6 +1011,12 @@ def quantize_sos(sos, spec: str | QFormat, *, key: str = "--quantize") -> tuple[
                           f"is [{qf.min_value:g}, {qf.max_value:.10g}] (after rounding to the nearest 2^-{qf.frac_bits})"
                           f"; {len(over)} coefficient(s) overflow, the largest |coefficient| is {biggest:.6g}. {hint} "
                           "Coefficients are never scaled or saturated silently.")
+    dead = np.flatnonzero(~np.any(q[:, :3], axis=1))
+    if dead.size:
+        i = int(dead[0])
+        raise ConfigError(None, key, f"{qf.spec} rounds every numerator coefficient of section {i} "
+                                     f"(b = {', '.join(f'{x:.3g}' for x in s[i, :3])}) to 0: the quantised filter "
+                                     f"would pass nothing; use more fractional bits (the LSB is {qf.lsb:.3g})")
     err = q - s
     zq, pq, _ = _sos_roots(q)
     _, pf, _ = _sos_roots(s)
@@ -1660,7 +1671,8 @@ def run_design_check(profile_path, coeffs_path, *, quantize: str | None = None, 
     profile = load_profile(profile_path)
     mask = profile.mask
     design = load_coefficients(coeffs_path, default_sample_rate_hz=profile.sample_rate_hz if profile.digital else None)
-    check_compatible(design, mask, profile_id=profile.id, profile_path=profile_path)
+    check_compatible(design, mask, profile_id=profile.id, profile_path=profile_path,
+                     digital_profile=profile.digital)
     qdesign = qrep = None
     if qf is not None:
         qdesign, qrep = quantize_design(design, qf)
@@ -1702,7 +1714,7 @@ def run_design_check(profile_path, coeffs_path, *, quantize: str | None = None, 
     w("\n")
     w(_band_table(res, qres, qrep))
     w("\n")
-    for label, r in (("", res), ("quantised ", qres)):
+    for label, r in (("", res), (f"{qrep.qformat.spec}: " if qrep else "", qres)):
         if r is not None and r.phase is not None:
             w(_phase_line(mask, r.phase, label))
     ok = res.passed and (qres is None or qres.passed)
@@ -1817,4 +1829,7 @@ def _phase_line(mask: Mask, ph: PhaseResult, label: str) -> str:
         parts.append(f"max group delay {gmax * 1e3:.6g} ms in the pass bands "
                      f"(margin {float(np.min(ph.group_delay_margin_s)) * 1e3:+.4g} ms)")
     verdict = "pass" if ph.passed else "FAIL"
-    return f"{label}phase    {rule.describe()}: " + "; ".join(parts) + f"  {verdict}\n"
+    desc = rule.describe()
+    desc = desc[len("none; "):] if desc.startswith("none; ") else desc
+    head = f"phase    {desc}: " if not label else f"         {label}"
+    return head + "; ".join(parts) + f"  {verdict}\n"

@@ -188,13 +188,17 @@ def bode_figure(mask: Mask, freq_hz, gain_db, *, phase_deg=None, group_delay_s=N
     for i, t in enumerate(extra):
         _draw_response(ax, np.asarray(t.freq_hz, float), np.asarray(t.gain_db, float), t.u_gain_db, None,
                        t.style, t.colour or C_EXTRA[i % len(C_EXTRA)], t.label or f"trace {i + 1}", handles,
-                       main_ylim, zorder=4)
+                       main_ylim, zorder=6, main=False)
     _draw_response(ax, f, g, u_gain_db, verdicts, style, C_CURVE, label, handles, main_ylim, zorder=5)
     ax.set_ylim(*main_ylim)
     ax.set_ylabel("gain dB")
     _mark_off_scale(ax, f, g, main_ylim, handles)
     if annotate_worst:
         _annotate_worst(ax, mask, f, g, g, main_ylim, handles, main=True)
+        for i, t in enumerate(extra):
+            tg = np.asarray(t.gain_db, float)
+            _annotate_worst(ax, mask, np.asarray(t.freq_hz, float), tg, tg, main_ylim, handles, main=False,
+                            colour=t.colour or C_EXTRA[i % len(C_EXTRA)], label=f"worst margin ({t.label})")
 
     if detail is not None:
         ax = ax_of["detail"]
@@ -205,7 +209,7 @@ def bode_figure(mask: Mask, freq_hz, gain_db, *, phase_deg=None, group_delay_s=N
             tf = np.asarray(t.freq_hz, float)
             _draw_response(ax, tf, d.shift(mask, tf, np.asarray(t.gain_db, float)), t.u_gain_db, None, t.style,
                            t.colour or C_EXTRA[i % len(C_EXTRA)], t.label or f"trace {i + 1}", handles, d.ylim,
-                           zorder=4)
+                           zorder=6, main=False)
         dev = d.shift(mask, f, g)
         _draw_response(ax, f, dev, u_gain_db, verdicts, style, C_CURVE, label, handles, d.ylim, zorder=5)
         ax.set_ylim(*d.ylim)
@@ -215,6 +219,10 @@ def bode_figure(mask: Mask, freq_hz, gain_db, *, phase_deg=None, group_delay_s=N
                 zorder=9)
         if annotate_worst:
             _annotate_worst(ax, mask, f, g, dev, d.ylim, handles, main=False)
+            for i, t in enumerate(extra):
+                tf, tg = np.asarray(t.freq_hz, float), np.asarray(t.gain_db, float)
+                _annotate_worst(ax, mask, tf, tg, d.shift(mask, tf, tg), d.ylim, handles, main=False,
+                                colour=t.colour or C_EXTRA[i % len(C_EXTRA)], label=f"worst margin ({t.label})")
 
     if lower != "none":
         ax = ax_of["lower"]
@@ -388,11 +396,12 @@ def _draw_edges(ax, edges, x_lo, x_hi, handles):
                 handles.setdefault("edge", (ln, "band edge"))
 
 
-def _draw_response(ax, f, g, u, verdicts, style, colour, label, handles, ylim, zorder):
+def _draw_response(ax, f, g, u, verdicts, style, colour, label, handles, ylim, zorder, main=None):
+    main = zorder == 5 if main is None else main
     keep = f > 0
     f, g = f[keep], g[keep]
     u = None if u is None or not np.size(u) else np.asarray(u, float)[keep]
-    key = "curve" if zorder == 5 else f"extra{len([k for k in handles if k.startswith('extra')])}"
+    key = "curve" if main else f"extra{len([k for k in handles if k.startswith('extra')])}"
     if key != "curve" and any(v[1] == label for k, v in handles.items() if k.startswith("extra")):
         key = next(k for k, v in handles.items() if v[1] == label)
     gg = np.where(np.isfinite(g), g, np.nan)
@@ -400,8 +409,8 @@ def _draw_response(ax, f, g, u, verdicts, style, colour, label, handles, ylim, z
         if u is not None:
             hu = ax.fill_between(f, gg - u, gg + u, color=colour, alpha=0.18, lw=0, zorder=zorder - 1)
             handles.setdefault("u", (hu, "expanded uncertainty"))
-        (h,) = ax.plot(f, np.clip(gg, ylim[0] - 1e3, None), color=colour, lw=1.4 if zorder == 5 else 1.1,
-                       ls="-" if zorder == 5 else (0, (5, 2)), zorder=zorder)
+        (h,) = ax.plot(f, np.clip(gg, ylim[0] - 1e3, None), color=colour, lw=1.4 if main else 1.2,
+                       ls="-" if main else (0, (4, 3)), zorder=zorder)
         handles.setdefault(key, (h, label))
         return
     cols = colour
@@ -453,8 +462,10 @@ def _mark_off_scale(ax, f, g, ylim, handles):
                         bbox=dict(boxstyle="square,pad=0.1", fc="white", ec="none", alpha=0.8))
 
 
-def _annotate_worst(ax, mask, f, g, shown, ylim, handles, *, main: bool):
-    """Mark the point of smallest margin (computed from `g`) at its drawn value `shown`."""
+def _annotate_worst(ax, mask, f, g, shown, ylim, handles, *, main: bool, colour: str = C_BAD,
+                    label: str = "worst margin"):
+    """Mark the point of smallest margin (computed from `g`) at its drawn value `shown`;
+    the main panel's main response also gets a label with the numbers."""
     if not f.size:
         return
     lo, hi = mask.limits(f)
@@ -471,9 +482,9 @@ def _annotate_worst(ax, mask, f, g, shown, ylim, handles, *, main: bool):
         if not main:
             return
         gy = min(max(gy, ylim[0]), ylim[1])
-    (h,) = ax.plot([f[j]], [gy], marker="o", ms=8, mfc="none", mec=C_BAD, mew=1.6, zorder=7, ls="none",
-                   clip_on=False)
-    handles.setdefault("worst", (h, "worst margin"))
+    (h,) = ax.plot([f[j]], [gy], marker="o", ms=8 if colour == C_BAD else 6.5, mfc="none", mec=colour, mew=1.6,
+                   zorder=7, ls="none", clip_on=False)
+    handles.setdefault("worst" if colour == C_BAD else f"worst-{label}", (h, label))
     if not main:
         return
     xl = ax.get_xlim()
@@ -521,7 +532,7 @@ def _draw_group_delay(ax, mask, pf, gd, extra, handles, x_lo):
     ax.plot(pf[keep], shown[keep], color=C_CURVE, lw=1.3, zorder=5)
     for tf, tg, col in extra_gd:
         tg = np.where((tg > yhi + 0.5 * span) | (tg < ylo - 0.5 * span), np.nan, tg)
-        ax.plot(tf, tg, color=col, lw=1.0, ls=(0, (5, 2)), zorder=4)
+        ax.plot(tf, tg, color=col, lw=1.1, ls=(0, (4, 3)), zorder=6)
     if lim:
         for b in mask.pass_bands():
             x = [max(b.start_hz, x_lo), b.stop_hz]
@@ -549,8 +560,8 @@ def _draw_phase(ax, mask, pf, ph, u, extra, style, handles):
         if t.phase_deg is not None and np.size(t.phase_deg):
             tf = np.asarray(t.freq_hz, float)
             k = tf > 0
-            ax.plot(tf[k], np.asarray(t.phase_deg, float)[k], color=t.colour or C_EXTRA[i % 3], lw=1.0,
-                    ls=(0, (5, 2)), zorder=4)
+            ax.plot(tf[k], np.asarray(t.phase_deg, float)[k], color=t.colour or C_EXTRA[i % 3], lw=1.1,
+                    ls=(0, (4, 3)), zorder=6)
     rule = mask.phase
     lim_vals = []
     if rule.rule == "limits":

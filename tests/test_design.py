@@ -630,6 +630,13 @@ def test_missing_file_and_sample_rate_mismatch(tmp_path, capsys):
                                                              stop_hi=40000), fs=None))
     assert main(["design-check", str(aprof), str(path)]) == 2
     assert "Nyquist" in capsys.readouterr().err
+    # an analog profile may state its converter's sample rate: a digital design at another
+    # rate is fine as long as the mask lies below the design's Nyquist frequency
+    aprof = write(tmp_path, "a2.toml", profile_text(pass_stop(1000, 3000, min_db=-1, max_db=1, stop_db=-20,
+                                                              stop_hi=20000), fs=48000,
+                                                    extra='domain = "analog"\n'))
+    assert main(["design-check", str(aprof), str(path)]) in (0, 1)
+    capsys.readouterr()
 
 
 def test_analog_design_against_digital_profile_is_evaluated_in_hz(tmp_path, capsys):
@@ -708,6 +715,13 @@ def test_quantisation_overflow_names_section_coefficient_and_a_format_that_fits(
     with pytest.raises(ConfigError):
         quantize_sos([[1 - 2.0 ** -17, 0, 0, 1, 0, 0]], "Q1.15")
     assert quantize_sos([[-1.0, 0, 0, 1, 0, 0]], "Q1.15")[0][0, 0] == -1.0     # -2^(m-1) is representable
+
+
+def test_a_format_that_zeroes_a_numerator_is_refused():
+    sos = signal.ellip(4, 0.5, 40, 2000, fs=FS, output="sos")      # b of section 0 ~ 0.011
+    with pytest.raises(ConfigError) as e:
+        quantize_sos(sos, "Q3.5")                                  # LSB 1/32: b rounds to 0
+    assert e.value.key == "--quantize" and "section 0" in str(e.value) and "pass nothing" in str(e.value)
 
 
 @pytest.mark.parametrize("spec", ["Q1", "1.15", "Q0.15", "Qa.b", "Q40.40", "Q1.15x", "", "Q.15"])
