@@ -1369,6 +1369,10 @@ def evaluate_design(design: FilterDesign, mask: Mask, *, points: int = 4000, tol
        (b) the interval-arithmetic bound: each factor |x - c| lies between its
            smallest and largest distance over the interval, which bounds the gain from
            above and below (this one works right next to a zero on the unit circle).
+       A digital ``ba`` design also gets (c), a bound from its coefficients alone
+       (`_ba_interval_bounds`: |N|^2 and |D|^2 are trigonometric polynomials with a
+       known bound of their second derivative), because numpy.roots of a long FIR
+       polynomial can be far off; the largest of the valid bounds counts.
        An interval whose bound lies more than `tol_db` below the current worst margin
        of its band is split in four and steps 2-3 repeat, until every interval is
        certified or `max_points` is reached. An interval whose bound is at least
@@ -1382,13 +1386,13 @@ def evaluate_design(design: FilterDesign, mask: Mask, *, points: int = 4000, tol
     axis) - the bound (a) grows as 1/d_min^2 exactly there - so such an interval is
     split until the dip is either found or proved to be shallower than `tol_db`.
     The grid and the refinement find the worst points quickly; the bound is what makes
-    the result a guarantee rather than a sampling. Residual assumptions, stated
-    honestly: the bounds are exact for the pole/zero form; the coefficient response
-    (sosfreqz / freqz) is trusted to agree with it between points as it does at the
-    points (their difference at the interval ends is subtracted from the bound); the
-    roots come from numpy.roots, so for a high-order ``ba`` polynomial whose roots are
-    ill-conditioned the certificate is only as good as the roots; and floating-point
-    rounding of |H| itself (about 1e-12 dB in pass bands) is ignored. If the point
+    the result a guarantee rather than a sampling (a property test checks it against
+    random and pole-clustered frequencies for random biquad cascades). Residual
+    assumptions, stated honestly: bounds (a) and (b) are exact for the pole/zero form,
+    and the coefficient response (sosfreqz / freqz) is trusted to agree with that form
+    between points as it does at the points (their difference at the interval ends is
+    subtracted); bound (c) needs no such assumption; floating-point rounding of |H|
+    itself (about 1e-13 dB in pass bands, more deep in a stop band) is ignored. If the point
     budget runs out, `DesignResult.certified` is False and `cert_gap_db` says how much
     worse the margin could still be. The phase rules are evaluated on the phase grid
     (base log grid, edges, critical frequencies, refined group-delay maxima) with the
