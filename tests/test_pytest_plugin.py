@@ -458,7 +458,8 @@ def test_fixed_point_design_check_of_the_hum_notch(pytester):
 # ======================================================================================
 def test_example_copied_into_an_empty_project_fails_readably_when_broken(pytester):
     """What a new user does with the README example: copy it into an empty project, run
-    pytest (passes), break the filter, run again (a readable failure)."""
+    pytest (passes), run it on a (simulated) bench station, then break the filter and
+    see a readable failure."""
     for f in EXAMPLE.iterdir():
         if f.is_file() and f.suffix in (".py", ".toml", ".json"):
             shutil.copy(f, pytester.path / f.name)
@@ -466,15 +467,52 @@ def test_example_copied_into_an_empty_project_fails_readably_when_broken(pyteste
     outcomes = res.parseoutcomes()
     assert outcomes.get("failed", 0) == 0 and outcomes.get("errors", 0) == 0, res.stdout.str()
     assert outcomes["passed"] >= 3 and outcomes["skipped"] == 1           # needs_station: no station in CI
-    # break the filter: the firmware engineer "tidies" the notch to Q = 30 (too sharp)
-    coeffs = next(pytester.path.glob("*coeffs*.json"))
+    res.stdout.fnmatch_lines(["*needs a measurement station: run pytest with --harness-station FILE*"])
+
+    # on a station (here a simulated one standing in for the bench) every test runs
+    coeffs = pytester.path / "notch_coeffs.json"
+    (pytester.path / "bench").mkdir()
+    (pytester.path / "bench" / "module.toml").write_text(make_board(coeffs, quantize="Q2.30").to_toml())
+    (pytester.path / "bench" / "station.toml").write_text(textwrap.dedent("""
+        [station]
+        id = "sim-bench-kd2"
+        backend = "simulated"
+        device_model = "module.toml"
+        sample_rate_hz = 48000
+        max_output_dbfs = -6.0
+        chain_latency_samples = 300
+        [station.type_b]
+        level_db = 0.02
+        flatness_db = 0.01
+        phase_deg = 0.1
+    """))
+    res = pytester.runpytest("-p", "no:cacheprovider", "--harness-station", "bench/station.toml",
+                             "--harness-serial", "KD2-00123")
+    res.assert_outcomes(passed=outcomes["passed"] + 1)
+    res.stdout.fnmatch_lines(["*KD2-00123 vs kestrel-ki-d2-fw-notch50*"])
+
+    # break the filter: a firmware build for 60 Hz mains (scipy.signal.iirnotch(60, 10))
     doc = json.loads(coeffs.read_text())
-    b, a = signal.iirnotch(50.0, 30.0, fs=doc["sample_rate_hz"])
-    doc["b"], doc["a"] = b.tolist(), a.tolist()
+    b, a = signal.iirnotch(60.0, 10.0, fs=doc["sample_rate_hz"])
+    assert doc["format"] == "sos"
+    doc["sos"] = [list(b) + list(a)]
     coeffs.write_text(json.dumps(doc, indent=1))
     res = pytester.runpytest("-p", "no:cacheprovider")
-    assert res.parseoutcomes()["failed"] >= 1
+    assert res.parseoutcomes()["failed"] >= 3
     out = res.stdout.str()
+    assert "Traceback" not in out
     assert 'failing band band[1] "mains 50 Hz" (stop 49.8..50.2 Hz): FAIL' in out
-    assert re.search(r"worst at +49\.8 Hz: (computed|measured) -1[0-9]\.[0-9]{3} dB, limit <= -20\.000 dB", out)
-    assert "certificate  " in out and "Traceback" not in out
+    assert 'failing band band[2] "above hum" (pass 60..20000 Hz): FAIL' in out
+    # the numbers in the messages against scipy.signal.freqz, relative to 1 kHz (the
+    # profile's reference): exact for the design check, within U for the measurement
+    for word, tol in (("computed", None), ("measured", "U")):
+        m = re.search(rf'band\[1\] "mains 50 Hz".*\n.*worst at +([0-9.]+) Hz: {word} (-[0-9.]+) dB, '
+                      rf"limit <= -20\.000 dB, margin (-[0-9.]+) dB, U = ([0-9.]+)", out)
+        assert m, (word, out)
+        f_hz, gain_db, margin_db, u_db = map(float, m.groups())
+        h = signal.freqz(b, a, worN=[f_hz, 1000.0], fs=doc["sample_rate_hz"])[1]
+        want_db = 20 * np.log10(abs(h[0]) / abs(h[1]))
+        assert 49.8 <= f_hz <= 50.2
+        assert abs(gain_db - want_db) <= (0.001 if tol is None else max(u_db, 0.01) + 0.002), (word, gain_db, want_db)
+        assert margin_db == pytest.approx(-20.0 - gain_db, abs=0.002)
+    assert re.search(r"certificate  \S+\.json", out) and re.search(r"plot +\S+\.png", out)
