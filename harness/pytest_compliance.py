@@ -696,7 +696,8 @@ class ComplianceResult:
             row("all bands", " | ".join(p.strip() for p in parts) + "  (worst margin per band)")
         shown = set()
         for r in self.reasons:
-            if self.kind == "design" and r.startswith(("band ", "transition ceiling")):
+            if (self.kind == "design" and r.startswith(("band ", "transition ceiling"))) or (
+                    bad and r.startswith("gain ")):
                 continue   # already shown band by band above
             if r not in shown and not (self.verdict == "pass" and r.startswith("every point")):
                 row("reason", r)

@@ -308,6 +308,9 @@ def test_markers_skip_with_a_clear_reason(pytester):
     res = pytester.runpytest("-rs")
     res.assert_outcomes(passed=1, skipped=1)
     res.stdout.fnmatch_lines(["*needs a measurement station: run pytest with --harness-station FILE*"])
+
+    def run(*args):
+        return pytester.runpytest("--import-mode=importlib", *args)
     (pytester.path / "audio.toml").write_text(textwrap.dedent("""
         [station]
         id = "bench-9"
@@ -456,6 +459,7 @@ def test_fixed_point_design_check_of_the_hum_notch(pytester):
 # ======================================================================================
 # the example a team copies
 # ======================================================================================
+@pytest.mark.slow
 def test_example_copied_into_an_empty_project_fails_readably_when_broken(pytester):
     """What a new user does with the README example: copy it into an empty project, run
     pytest (passes), run it on a (simulated) bench station, then break the filter and
@@ -463,11 +467,17 @@ def test_example_copied_into_an_empty_project_fails_readably_when_broken(pyteste
     for f in EXAMPLE.iterdir():
         if f.is_file() and f.suffix in (".py", ".toml", ".json"):
             shutil.copy(f, pytester.path / f.name)
-    res = pytester.runpytest("-p", "no:cacheprovider", "-rs")
+    # first in a fresh process, exactly as a new user runs it; then in this process with
+    # importlib imports, so that this suite's own copy of test_notch_firmware.py (already
+    # imported under that name) does not clash with the project's copy
+    res = pytester.runpytest_subprocess("-p", "no:cacheprovider", "-rs")
     outcomes = res.parseoutcomes()
     assert outcomes.get("failed", 0) == 0 and outcomes.get("errors", 0) == 0, res.stdout.str()
     assert outcomes["passed"] >= 3 and outcomes["skipped"] == 1           # needs_station: no station in CI
     res.stdout.fnmatch_lines(["*needs a measurement station: run pytest with --harness-station FILE*"])
+
+    def run(*args):
+        return pytester.runpytest("--import-mode=importlib", *args)
 
     # on a station (here a simulated one standing in for the bench) every test runs
     coeffs = pytester.path / "notch_coeffs.json"
@@ -486,7 +496,7 @@ def test_example_copied_into_an_empty_project_fails_readably_when_broken(pyteste
         flatness_db = 0.01
         phase_deg = 0.1
     """))
-    res = pytester.runpytest("-p", "no:cacheprovider", "--harness-station", "bench/station.toml",
+    res = run("-p", "no:cacheprovider", "--harness-station", "bench/station.toml",
                              "--harness-serial", "KD2-00123")
     res.assert_outcomes(passed=outcomes["passed"] + 1)
     res.stdout.fnmatch_lines(["*KD2-00123 vs kestrel-ki-d2-fw-notch50*"])
@@ -497,7 +507,7 @@ def test_example_copied_into_an_empty_project_fails_readably_when_broken(pyteste
     assert doc["format"] == "sos"
     doc["sos"] = [list(b) + list(a)]
     coeffs.write_text(json.dumps(doc, indent=1))
-    res = pytester.runpytest("-p", "no:cacheprovider")
+    res = run("-p", "no:cacheprovider")
     assert res.parseoutcomes()["failed"] >= 3
     out = res.stdout.str()
     assert "Traceback" not in out
@@ -516,3 +526,13 @@ def test_example_copied_into_an_empty_project_fails_readably_when_broken(pyteste
         assert abs(gain_db - want_db) <= (0.001 if tol is None else max(u_db, 0.01) + 0.002), (word, gain_db, want_db)
         assert margin_db == pytest.approx(-20.0 - gain_db, abs=0.002)
     assert re.search(r"certificate  \S+\.json", out) and re.search(r"plot +\S+\.png", out)
+
+
+def test_readme_example_is_the_tested_example():
+    """The README's copy-paste example must be exactly these tested files."""
+    readme = ROOT / "README.md"
+    text = readme.read_text(encoding="utf-8") if readme.exists() else ""
+    if "test_notch_firmware.py" not in text:
+        pytest.skip("README.md has no pytest example section yet")
+    for name in ("notch-profile.toml", "notch_coeffs.json", "test_notch_firmware.py"):
+        assert (EXAMPLE / name).read_text(encoding="utf-8").rstrip("\n") in text, name
