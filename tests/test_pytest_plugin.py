@@ -415,10 +415,15 @@ def test_simulated_station_file_and_needs_station(pytester):
         flatness_db = 0.01
         phase_deg = 0.1
     """})
-    res = pytester.runpytest("--harness-station", "sim.toml", "--harness-serial", "SN-777", "-p", "no:cacheprovider")
+    res = pytester.runpytest("--harness-station", "sim.toml", "--harness-serial", "SN-777", "--harness-out", "records",
+                             "-p", "no:cacheprovider")
     res.assert_outcomes(passed=1)
     res.stdout.fnmatch_lines(["harness: station sim-bench-1 (simulated, 48000 Hz)*",
                               "*harness compliance results*", "FAIL*SN-777 vs acme-lp1k*"])
+    # --harness-out: the records under DIR/<test id>/, named by the serial number
+    certs = list((pytester.path / "records").glob("*/SN-777_*.json"))
+    assert len(certs) == 1 and certs[0].parent.name.startswith("test_lp.py-test_station_unit")
+    assert json.loads(certs[0].read_text())["unit"]["serial"] == "SN-777"
 
 
 # ======================================================================================
