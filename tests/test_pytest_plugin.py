@@ -18,6 +18,7 @@ import numpy as np
 import pytest
 from scipy import signal
 
+from harness.design import load_coefficients
 from harness.errors import ConfigError
 from harness.profile import load_profile
 from harness.pytest_compliance import (SIM_RATES_HZ, ComplianceFailure, ComplianceResult, assert_compliant,
@@ -216,6 +217,16 @@ def test_board_from_design_dict_and_arrays_matches_scipy():
     sos = lp_sos(1000.0)
     digital = make_board(sos=sos, sample_rate_hz=FS, id="lp")
     assert np.allclose(digital.response(f, FS), signal.sosfreqz(sos, worN=f, fs=FS)[1], rtol=1e-12)
+    # an analog coefficient file becomes an analog board (zeros/poles in rad/s)
+    path = COEFFS / "iec61260-octave-1k-class1-pass-analog.json"
+    doc = json.loads(path.read_text())
+    board = make_board(path)
+    assert board.filter.domain == "analog"
+    f = np.array([500.0, 1000.0, 2000.0])
+    design = load_coefficients(path)
+    want = signal.freqs_zpk(design.zeros, design.poles, design.gain, worN=2 * np.pi * f)[1]
+    assert np.allclose(board.response(f), want, rtol=1e-9)
+    assert doc["domain"] == "analog"
     with pytest.raises(ConfigError, match="give either a source or coefficients"):
         make_board(COEFFS / "hum-notch-50-pass.json", sos=sos)
 
