@@ -194,31 +194,38 @@ def _analyze_estimate(profile: Profile, est, station: StationFacts,
     phase_deg = np.degrees(np.angle(h * np.exp(2j * np.pi * f * delay_s)))
 
     low, high = mask.limits(f)
-    marg = margin(gain_db, low, high)
 
-    # points not measured properly: a low SNR where a lower limit applies (a gain floor
-    # cannot be demonstrated from noise); above a ceiling only, noise biases |H| upwards
-    # and the uncertainty grows, so the decision stays conservative.
-    low_snr = snr < station.min_snr_db
-    bad = low_snr & np.isfinite(low)
-    valid &= ~bad
-    if np.any(bad):
-        j = np.flatnonzero(bad)
+    # Points the estimator could not measure properly. Where only a ceiling applies
+    # (stop band) and the response is merely lost in the noise, the point is judged on
+    # an upper bound instead: the larger of the measured gain and the noise floor there
+    # (the smallest gain distinguishable from noise), which can only overstate the gain.
+    est_valid = np.asarray(est.valid, dtype=bool)
+    why = list(getattr(est, "invalid_reason", None) or [None] * f.size)
+    upper_only = ~np.isfinite(low) & np.isfinite(high)
+    nf = np.asarray(getattr(est, "noise_floor_db", np.full(f.size, -np.inf)), dtype=float)
+    nf_rel = nf - (gain_abs_db[ref_i] if ref_i is not None else 0.0)
+    noise_limited = np.array([bool(r) and ("noise" in str(r).lower() or "snr" in str(r).lower()) for r in why])
+    bounded = ~est_valid & upper_only & noise_limited
+    if np.any(bounded):
+        gain_db = np.where(bounded, np.maximum(gain_db, nf_rel), gain_db)
+        notes.append(f"{int(bounded.sum())} stop-band point(s) lie below the noise floor; each is judged on an "
+                     "upper bound (the noise floor there), which overstates the gain")
+    valid = est_valid | bounded
+    unusable = ~valid & (np.isfinite(low) | np.isfinite(high))
+    if np.any(unusable):
+        j = np.flatnonzero(unusable)
+        first = next((str(why[i]) for i in j if why[i]), "estimator marked points invalid")
+        reasons.append(f"{j.size} point(s) not measured properly: {first}")
+    valid |= ~(np.isfinite(low) | np.isfinite(high))     # no requirement there: nothing to judge
+    # a floor (pass band) cannot be demonstrated from a noisy point: below the station's
+    # minimum SNR such a point is not measured properly
+    low_snr = (snr < station.min_snr_db) & np.isfinite(low) & valid
+    if np.any(low_snr):
+        j = np.flatnonzero(low_snr)
+        valid &= ~low_snr
         reasons.append(f"signal-to-noise ratio below {station.min_snr_db:g} dB at {j.size} point(s) with a gain "
                        f"floor (worst {snr[j].min():.1f} dB at {f[j[np.argmin(snr[j])]]:g} Hz)")
-    if np.any(low_snr & ~np.isfinite(low) & np.isfinite(high)):
-        notes.append("some stop-band points are at or near the noise floor; they are judged on the measured "
-                      "value with its (larger) uncertainty, which overstates the gain")
-    inv_reason = getattr(est, "invalid_reason", None)
-    if not np.all(np.asarray(est.valid, dtype=bool)):
-        bad_est = ~np.asarray(est.valid, dtype=bool) & (np.isfinite(low) | np.isfinite(high))
-        if np.any(bad_est):
-            why = inv_reason if isinstance(inv_reason, str) else "estimator marked points invalid"
-            if isinstance(inv_reason, (list, np.ndarray)):
-                why = next((str(r) for r, b in zip(inv_reason, bad_est) if b and r), "estimator marked points invalid")
-            reasons.append(f"{int(bad_est.sum())} point(s) not measured properly: {why}")
-        else:
-            valid |= ~np.asarray(est.valid, dtype=bool) & ~(np.isfinite(low) | np.isfinite(high))
+    marg = margin(gain_db, low, high)
 
     U = g_budget.expanded
     pd = dec.decide(gain_db, low, high, rule=d.rule, expanded=U, u=g_budget.u_c, dof=g_budget.nu_eff,
