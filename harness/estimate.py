@@ -966,6 +966,7 @@ def estimate_multitone(plan, capture, *, min_snr_db: float = DEFAULT_MIN_SNR_DB,
         _period_displacements(y, lag0, plan, max_clock_ppm, "response")
     _check_not_cut(late, a.size, s.size)
     details["coarse_clock_ppm"] = eps_c * 1e6
+    details["period_displacements"] = [float(v) for v in disp]
     nb_all = np.asarray(plan.noise_bins, dtype=np.int64)
     nb_use = nb_all[nb_all >= MIN_NOISE_BIN]
     neigh = _noise_neighbours(bins, nb_use, NOISE_BINS_PER_TONE)
@@ -981,25 +982,28 @@ def estimate_multitone(plan, capture, *, min_snr_db: float = DEFAULT_MIN_SNR_DB,
     def tone_noise_var(spec):
         """Per-period noise variance near each tone, from non-excited bins' scatter."""
         if neigh is None:
-            return np.var(spec[:, bins], axis=0, ddof=1) * 1.0
+            return np.var(spec[:, bins], axis=0, ddof=1)
         v = np.var(spec[:, nb_use], axis=0, ddof=1)
         return v[neigh].mean(axis=1)
 
     drift_cycles = abs(eps_c) * (n / 2) * (t_per + p)
-    a1, y1, r1, lag1, alpha1 = a, y, r, lag0, 1.0
-    if drift_cycles > 0.02:
+    a1, lag1, alpha1 = a, lag0, 1.0
+    if drift_cycles > 0.02:                            # tones would leak: resample first
         alpha1 = 1.0 + eps_c
         a1 = resample_by_ratio(a, alpha1)
         lag1 = int(round(lag0 / alpha1))
     spec_a = per_period(a1, lag1) if lag1 + (t_per + p) * n <= a1.size else per_period(a, lag0)
     d_eps, u_eps, used = _phase_drift(spec_a[:, bins], bins, tone_noise_var(spec_a))
-    eps = alpha1 * (1.0 + d_eps) - 1.0
     details["clock_tones_used"] = used
-    significant = np.isfinite(u_eps) and abs(eps) > 3.0 * u_eps
+    if np.isfinite(u_eps):
+        eps = alpha1 * (1.0 + d_eps) - 1.0
+        significant = abs(eps) > 3.0 * u_eps
+    else:
+        eps = eps_c
+        significant = abs(eps_c) > 1e-6
+        notes.append("no tone strong enough to refine the clock offset; the coarse estimate (from period "
+                     "displacements, no uncertainty) is used")
     do_correct = significant if correct_clock is None else bool(correct_clock)
-    if not np.isfinite(u_eps):
-        u_eps = abs(eps_c) if eps_c else float("nan")
-        notes.append("no tone strong enough to refine the clock offset; the coarse estimate is reported")
     if do_correct and eps != 0.0:
         alpha = 1.0 + eps
         y = resample_by_ratio(y, alpha)
@@ -1017,8 +1021,9 @@ def estimate_multitone(plan, capture, *, min_snr_db: float = DEFAULT_MIN_SNR_DB,
                          "no correction")
     details["clock_corrected"] = bool(do_correct and eps != 0.0)
     if lag + (t_per + p) * n - guard > a.size:
-        raise InvalidMeasurement(f"capture too short: the measured periods end {lag + (t_per + p) * n - guard - a.size} "
-                                 "samples after the capture (latency or clock stretch beyond the extra samples)")
+        over = lag + (t_per + p) * n - guard - a.size
+        raise InvalidMeasurement(f"capture too short: the measured periods end {over} samples after the capture "
+                                 "(latency or clock stretch beyond the extra samples)")
     w0 = lag + t_per * n - guard                       # start of the first measured window
     # dropouts: in the measured periods (both channels), the reference from just after
     # the start (it carries no device transient), and before the start
@@ -1204,8 +1209,12 @@ def estimate_stepped_sine(plan, capture, *, four_parameter: bool | None = None,
        freedom.
     4. A fit of DC, the tone and its harmonics over the whole segment gives the noise
        (residual), the SNR, the noise floor and the distortion (harmonic power, noise
-       removed). Blocks that scatter BLOCK_SCATTER_RATIO times more than that noise
-       allows mean a dropout or an unsettled response (raises).
+       removed). Dropouts (raise): reference blocks that scatter BLOCK_SCATTER_RATIO
+       times more than their noise allows, or a reference tone whose phase in its
+       settling interval differs from that in its segment; response blocks that scatter
+       so while one of them also fits clearly worse ("dropout or unsettled response").
+       A milder drift from block to block (a response still settling) adds an allowance
+       to the uncertainty (`_drift_allowance`) and a note.
     5. Bulk delay: correlation lag (plus, with a reference, the response's own lag) and
        the weighted phase slope (`_fit_delay`).
 
@@ -1261,8 +1270,7 @@ def estimate_stepped_sine(plan, capture, *, four_parameter: bool | None = None,
     # (the correlation peaks after the true start): then they move back by half the
     # settling time.
     half_settle = int(plan.settle_samples) // 2
-    shift = min(END_GUARD_SAMPLES, half_settle) if r is not None else max(half_settle, min(END_GUARD_SAMPLES,
-                                                                                          half_settle))
+    shift = min(END_GUARD_SAMPLES, half_settle) if r is not None else half_settle
     details["block_shift_samples"] = shift
 
     # -- clock -------------------------------------------------------------------------
@@ -1295,6 +1303,8 @@ def estimate_stepped_sine(plan, capture, *, four_parameter: bool | None = None,
         else:
             u_eps = float("nan")
             notes.append("no step strong enough for a four-parameter clock estimate; clocks taken as shared")
+    if four_parameter is False:
+        notes.append("clocks declared shared (four_parameter=False): no clock estimate")
     if not applied:
         if four_parameter is None and np.isfinite(u_eps) and u_eps > 0:
             notes.append(f"clock offset {eps * 1e6:+.4f} ppm not significant (u = {u_eps * 1e6:.4f} ppm); "

@@ -313,10 +313,6 @@ def test_stepped_sine_type_a_matches_scatter_over_seeds(sp):
 # --------------------------------------------------------------------------------------
 # invalid measurements
 # --------------------------------------------------------------------------------------
-def estimators():
-    return [("multitone", estimate_multitone), ("stepped", estimate_stepped_sine)]
-
-
 @pytest.fixture(params=["multitone", "stepped"])
 def plan_and_estimator(request, mt, sp):
     return (mt, estimate_multitone) if request.param == "multitone" else (sp, estimate_stepped_sine)
