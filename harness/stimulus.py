@@ -61,6 +61,7 @@ GRID_PERIOD_CAP_S = 0.5        # resolving the grid's low end may lengthen the p
 STEPPED_TOP_FRACTION = 1.0 - 1.0 / 1024.0   # stepped sine: up to this fraction of Nyquist
 STEPPED_FREQ_TOL = 1e-4        # accepted relative frequency adjustment for whole cycles
 DEFAULT_MAX_CLOCK_PPM = 250.0  # clock offset margin used by extra_samples()
+REFERENCE_LENGTH_FACTOR = 4    # stepped sine: the reference frequency gets 4x the cycles and time
 
 _PRIORITY = {"reference": 0, "edge": 1, "listed": 2, "grid": 3}
 
@@ -937,9 +938,10 @@ def stepped_sine_plan(requests: list[FrequencyRequest], sample_rate_hz: float, *
 
     Per frequency ``f``: ``c`` whole cycles in ``m`` samples per block, ``blocks``
     blocks per capture segment, with ``blocks * c >= cycles`` and
-    ``blocks * m >= min_tone_s * fs``; the frequency is adjusted to ``c * fs / m``
-    (within STEPPED_FREQ_TOL relative where possible, always inside the request's
-    interval) and reported. Before each segment the tone plays for ``settle_s``.
+    ``blocks * m >= min_tone_s * fs`` (both REFERENCE_LENGTH_FACTOR times more for the
+    point of kind "reference", since every relative gain carries its uncertainty); the
+    frequency is adjusted to ``c * fs / m`` (within STEPPED_FREQ_TOL relative where
+    possible, always inside the request's interval) and reported. Before each segment the tone plays for ``settle_s``.
     The level is the sine's peak: ``amplitude = 10**(level_dbfs/20)``.
 
     Parameters
@@ -974,8 +976,11 @@ def stepped_sine_plan(requests: list[FrequencyRequest], sample_rate_hz: float, *
         if not (0 < r.target_hz <= top):
             uncovered.append(float(r.target_hz))
             continue
-        c_min = max(1, math.ceil(cycles / blocks), math.ceil(min_tone_s * r.target_hz / blocks - 1e-9))
-        m_min = math.ceil(min_tone_s * fs / blocks - 1e-9)
+        # the reference frequency is measured REFERENCE_LENGTH_FACTOR times longer:
+        # every gain relative to it carries its uncertainty
+        f_len = REFERENCE_LENGTH_FACTOR if r.kind == "reference" else 1
+        c_min = max(1, math.ceil(f_len * cycles / blocks), math.ceil(f_len * min_tone_s * r.target_hz / blocks - 1e-9))
+        m_min = math.ceil(f_len * min_tone_s * fs / blocks - 1e-9)
         cm = _realize(FrequencyRequest(r.target_hz, r.lo_hz, min(r.hi_hz, top), r.kind, r.label), fs, c_min, m_min)
         if cm is None:
             uncovered.append(float(r.target_hz))

@@ -278,6 +278,10 @@ def test_stepped_sine_segments_hold_whole_cycles(ss_plan):
         assert np.max(spec) < 1e-9 * (b - a) * ss_plan.amplitude
         # settle part precedes the segment
         assert a - ss_plan.step_starts[k] == ss_plan.settle_samples == math.ceil(0.003 * FS)
+    # the reference frequency (1000 Hz) is measured 4x longer (every relative gain uses it)
+    j = ss_plan.point_kind.index("reference")
+    a, b = ss_plan.segments[j]
+    assert (b - a) >= 4 * 0.004 * FS and ss_plan.freq_hz[j] * (b - a) / FS >= 4 * 8 - 1e-9
     # frequencies moved by at most 1e-4 relative from their request, edges stay in band
     rel = np.abs(ss_plan.freq_hz / ss_plan.requested_hz - 1)
     assert np.all(rel[ss_plan.freq_hz < 0.49 * FS] <= 1e-4)
