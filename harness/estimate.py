@@ -605,28 +605,47 @@ def _absent(name: str, detail: str) -> InvalidMeasurement:
                               "not connected")
 
 
+def _xcorr(x: np.ndarray, s: np.ndarray, lo: int, hi: int) -> np.ndarray:
+    """``c[l - lo] = sum_n s[n] x[n + l]`` for ``lo <= l <= hi`` (``x`` taken as zero
+    outside its samples), by `scipy.signal.fftconvolve` over chunks of `s`, so long
+    stimuli need memory of the order of the chunk, not of the whole signal."""
+    n_lags = hi - lo + 1
+    if n_lags <= 0:
+        return np.zeros(0)
+    pad_lo = max(0, -lo)
+    pad_hi = max(0, hi + s.size - x.size)
+    if pad_lo or pad_hi:
+        x = np.concatenate([np.zeros(pad_lo), x, np.zeros(pad_hi)])
+        lo += pad_lo
+    chunk = max(1 << 16, 2 * n_lags)
+    out = np.zeros(n_lags)
+    for j in range(0, s.size, chunk):
+        sj = s[j:j + chunk]
+        seg = x[lo + j: lo + j + n_lags - 1 + sj.size]
+        out += scipy.signal.fftconvolve(seg, sj[::-1], mode="valid")
+    return out
+
+
 def _onset(x: np.ndarray, s: np.ndarray, lo: int = 0, hi: int | None = None) -> int:
     """Lag (samples) at which the played signal `s` starts in `x`: the largest
     ``|sum_n x[n + lag] s[n]|`` over ``lo <= lag <= hi`` (cross-correlation with the known
-    stimulus via `scipy.signal.fftconvolve`; the absolute value so an inverting device
-    is found too)."""
+    stimulus, `_xcorr`; the absolute value so an inverting device is found too)."""
     hi = x.size - s.size if hi is None else min(hi, x.size - s.size)
     lo = max(0, lo)
     if hi < lo:
         return lo
-    corr = scipy.signal.fftconvolve(x[lo:hi + s.size], s[::-1], mode="valid")
-    return lo + int(np.argmax(np.abs(corr)))
+    return lo + int(np.argmax(np.abs(_xcorr(x, s, lo, hi))))
 
 
 def _start(x: np.ndarray, s: np.ndarray) -> tuple[int, int | None]:
     """Start of the stimulus in the capture (`_onset` over every lag at which the whole
     stimulus fits), and a later start when the stimulus correlates clearly better
     (by 5 %) with the capture continued by zeros, i.e. when its end looks cut off;
-    None otherwise. See `_check_not_cut`."""
+    None otherwise. See `_check_not_cut`. Lags up to the larger of 8192 and twice the
+    extra samples (at most a quarter of the stimulus) past the last fit are tried."""
     adm = x.size - s.size
-    ext = s.size // 4
-    xz = np.concatenate([x, np.zeros(ext)])
-    corr = np.abs(scipy.signal.fftconvolve(xz, s[::-1], mode="valid"))
+    ext = min(s.size // 4, max(8192, 2 * adm))
+    corr = np.abs(_xcorr(x, s, 0, adm + ext))
     lag = int(np.argmax(corr[:adm + 1]))
     late = int(np.argmax(corr))
     if late > adm and corr[late] > 1.05 * corr[lag]:
@@ -1138,11 +1157,11 @@ def estimate_multitone(plan, capture, *, min_snr_db: float = DEFAULT_MIN_SNR_DB,
 # stepped sine
 # ======================================================================================
 def _harmonic_fit(x: np.ndarray, w: float, harmonics: int) -> tuple[np.ndarray, float, int]:
-    """Least squares of `x` on an offset and ``cos/sin(h w n)`` for h = 1..harmonics
-    (those below 0.98 Nyquist). Returns the phasors per harmonic, the residual variance
+    """Least squares of `x` on an offset and ``cos/sin(h w n)`` for the tone (h = 1) and
+    its harmonics h = 2..harmonics below 0.98 Nyquist. Returns the phasors per harmonic, the residual variance
     and the number of fitted columns."""
     nn = np.arange(x.size, dtype=float)
-    hs = [h for h in range(1, harmonics + 1) if h * w < 0.98 * np.pi]
+    hs = [1] + [h for h in range(2, harmonics + 1) if h * w < 0.98 * np.pi]
     cols = [np.ones_like(nn)]
     for h in hs:
         cols += [np.cos(h * w * nn), np.sin(h * w * nn)]
@@ -1213,8 +1232,11 @@ def estimate_stepped_sine(plan, capture, *, four_parameter: bool | None = None,
        times more than their noise allows, or a reference tone whose phase in its
        settling interval differs from that in its segment; response blocks that scatter
        so while one of them also fits clearly worse ("dropout or unsettled response").
-       A milder drift from block to block (a response still settling) adds an allowance
-       to the uncertainty (`_drift_allowance`) and a note.
+       Leading blocks that fit clearly worse (residual above 3 times the median of the
+       second half) are still settling and are left out, with a note and fewer degrees
+       of freedom; when fewer than half remain the response is "unsettled" (raises). A
+       milder drift from block to block adds an allowance to the uncertainty
+       (`_drift_allowance`) and a note.
     5. Bulk delay: correlation lag (plus, with a reference, the response's own lag) and
        the weighted phase slope (`_fit_delay`).
 
@@ -1337,6 +1359,7 @@ def estimate_stepped_sine(plan, capture, *, four_parameter: bool | None = None,
     harm_p, fund_p = 0.0, 0.0
     y_peak, r_peak = 0.0, 0.0
     jump = None
+    first = np.zeros(k, dtype=np.int64)               # first block used per step
     for i, (a0, b0) in enumerate(segs):
         wc = w_nom[i] / alpha
         blk_res, blk_res_u = [], []
@@ -1372,10 +1395,25 @@ def estimate_stepped_sine(plan, capture, *, four_parameter: bool | None = None,
             u_amp = abs(ph_r[0])
             snr_u[i] = float(_db10(abs(ph_r[0]) ** 2 * nn / (4.0 * var_r))) if var_r > 0 else float("inf")
         floor[i] = float(_db10(noise_ph / u_amp ** 2)) if u_amp > 0 else float("inf")
-        if jump is None and nblk >= 2:
-            jump = _block_jump(yb[:, i], blk_res, int(m0[i]), freq[i], lo, "response", snr[i])
-        if jump is None and r is not None and nblk >= 2:
-            jump = _block_jump(ub[:, i], blk_res_u, int(m0[i]), freq[i], lo, "reference", snr_u[i])
+        # leading blocks that fit clearly worse than the settled second half are still
+        # settling: leave them out (at least half of the blocks must remain)
+        res_arr = np.asarray(blk_res)
+        tail = float(np.median(res_arr[nblk // 2:]))
+        f0 = 0
+        while f0 < nblk and tail > 0 and res_arr[f0] > 3.0 * tail and snr[i] >= PRESENCE_DB:
+            f0 += 1
+        first[i] = f0
+        if nblk - f0 < max(2, (nblk + 1) // 2):
+            if jump is None:
+                jump = InvalidMeasurement(
+                    f"unsettled response: at {freq[i]:.6g} Hz only {nblk - f0} of {nblk} blocks had settled "
+                    f"(segment from capture sample {lo}); the device settles more slowly than settle_s allows")
+            f0 = first[i] = 0
+        kept = slice(f0, nblk)
+        if jump is None and nblk - f0 >= 2:
+            jump = _block_jump(yb[kept, i], blk_res[f0:], int(m0[i]), freq[i], lo, "response", snr[i])
+        if jump is None and r is not None and nblk - f0 >= 2:
+            jump = _block_jump(ub[kept, i], blk_res_u[f0:], int(m0[i]), freq[i], lo, "reference", snr_u[i])
             # the reference keeps its phase through the settling interval (no device there)
             s0 = int(round(lag0 + int(plan.step_starts[i]) * alpha)) + 64
             if jump is None and lo - s0 >= max(64, int(2 * np.pi / wc)):
@@ -1403,22 +1441,32 @@ def estimate_stepped_sine(plan, capture, *, four_parameter: bool | None = None,
     if jump is not None:
         raise jump
 
-    # -- ratio, covariance -------------------------------------------------------------
+    # -- ratio, covariance (per step: the blocks that had settled) ----------------------
     stim = plan.amplitudes * np.exp(1j * np.asarray(plan.phases_rad, dtype=float))
-    if r is not None:
-        h, cov_h, ym, um = _ratio_of_means(yb, ub, None)
-    else:
-        stim = plan.amplitudes * np.exp(1j * np.asarray(plan.phases_rad, dtype=float))
-        g, cov, ym, um = _ratio_of_means(yb, None, stim)
+    h = np.zeros(k, dtype=complex)
+    cov_h = np.zeros((k, 2, 2))
+    allow = np.zeros(k)
+    dof = np.zeros(k)
+    for i in range(k):
+        sl = slice(int(first[i]), nblk)
+        yi = yb[sl, i:i + 1]
+        ui = ub[sl, i:i + 1] if r is not None else None
+        g_i, c_i, _, _ = _ratio_of_means(yi, ui, None if r is not None else stim[i:i + 1])
+        h[i], cov_h[i] = g_i[0], c_i[0]
+        allow[i] = _drift_allowance(yi / (ui if r is not None else stim[i:i + 1]))[0]
+        dof[i] = yi.shape[0] - 1
+    if r is None:
         lag_p = lag0 / alpha
-        h = g * np.exp(-1j * w_nom * lag_p)
-        cov_h = _rotate_cov(cov, -w_nom * lag_p)
+        h = h * np.exp(-1j * w_nom * lag_p)
+        cov_h = _rotate_cov(cov_h, -w_nom * lag_p)
         if applied and np.isfinite(u_eps):
             mid = np.array([(a0 + b0) / 2.0 for a0, b0 in segs])
             cov_h = _add_phase_variance(cov_h, h, (w_nom * mid * u_eps) ** 2)
-    dof = np.full(k, float(nblk - 1))
-    per = yb / (ub if r is not None else stim[None, :])
-    allow = _drift_allowance(per)
+    if np.any(first > 0):
+        hz = ", ".join(f"{f:.6g}" for f in freq[first > 0][:6])
+        notes.append(f"the first blocks of {int(np.count_nonzero(first))} step(s) were still settling and were left "
+                     f"out (e.g. at {hz} Hz; fewer degrees of freedom there); a longer settle_s would keep them")
+    details["blocks_left_out"] = [int(v) for v in first]
     if np.any(allow > 0):
         cov_h = cov_h + (allow / 2.0)[:, None, None] * np.eye(2)[None, :, :]
         hz = ", ".join(f"{f:.6g}" for f in freq[allow > 0][:6])
