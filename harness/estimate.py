@@ -64,7 +64,10 @@ class ResponseEstimate:
     Attributes
     ----------
     freq_hz : ndarray, shape (n,)
-        Frequencies actually excited, Hz (the plan's ``freq_hz``).
+        Frequencies actually excited, Hz (the plan's ``freq_hz``), on the PLAYBACK
+        clock, i.e. as generated. A capture clock that runs ``clock_offset_ppm`` fast
+        sees them at ``freq_hz / (1 + clock_offset_ppm * 1e-6)``; a model of the device
+        that lives on the capture clock must be evaluated there.
     h : ndarray of complex, shape (n,)
         Response (output / input) at `freq_hz`, including every delay (module docstring).
     cov_h : ndarray, shape (n, 2, 2)
