@@ -32,8 +32,9 @@ MIN_SNR_DB = 40.0  # a loopback is a wire: anything noisier means a bad connecti
 
 def calibration_profile(station: Station, *, f_min_hz: float = 10.0, level_dbfs: float = -12.0) -> Profile:
     """The internal profile a calibration runs: a log multitone (24 points per decade)
-    from `f_min_hz` to 0.45 fs with a wide-open mask (a loopback has no limits)."""
-    f_max = 0.45 * station.sample_rate_hz
+    from `f_min_hz` up to just below Nyquist (the plan drops what the station cannot
+    excite) with a wide-open mask (a loopback has no limits)."""
+    f_max = 0.499 * station.sample_rate_hz
     level = min(level_dbfs, station.max_output_dbfs)
     band = Band("limits", f_min_hz, f_max, upper=LimitLine((f_min_hz, f_max), (40.0, 40.0)), label="chain")
     mask = Mask(bands=(band,))
