@@ -290,8 +290,18 @@ def _phase_decision(profile: Profile, f, h, delay_s, p_budget: Budget, valid) ->
     mask = profile.mask
     rule = mask.phase
     d = profile.decision
+    # The linear rule is indifferent to a pure delay: judge the residual (bulk delay
+    # removed), which unwraps safely on a sparse grid. The zero rule judges the full
+    # response (its wrapped phase needs no unwrapping). The limit lines refer to the full
+    # phase: unwrap the residual, then add the removed delay back exactly.
     h_res = h * np.exp(2j * np.pi * f * delay_s)
-    ev = mask.evaluate(f, h_res).phase
+    ev = mask.evaluate(f, h if rule.rule == "zero" else h_res).phase
+    if rule.rule == "limits":
+        full = ev.deviation_deg - 360.0 * ev.freq_hz * delay_s
+        if full.size:
+            full = full - 360.0 * np.round((full[0] - (((full[0] + 180.0) % 360.0) - 180.0)) / 360.0)
+        ev.deviation_deg = full
+        ev.phase_deg = full
     sel = np.isin(f, ev.freq_hz)
     U = p_budget.expanded[sel]
     u = p_budget.u_c[sel]

@@ -178,6 +178,12 @@ def certificate_plot(profile: Profile, a: Analysis, serial: str) -> bytes | None
                   title=f"{serial}: {profile.id} rev {profile.revision or '-'}: {a.verdict.upper()}",
                   subtitle=f"decision rule: {a.rule}, coverage {a.confidence:g}; phase shown with the bulk delay "
                            f"{a.delay_s * 1e3:.3f} ms removed")
+    if pc.get("rule") == "limits" and pc.get("phase_deg"):
+        # the limit lines refer to the full phase (bulk delay included)
+        kwargs.update(phase_deg=np.asarray(pc["phase_deg"], dtype=float),
+                      u_phase_deg=np.asarray(pc["U_phase_deg"], dtype=float),
+                      phase_freq_hz=np.asarray(pc["frequency_hz"], dtype=float))
+        kwargs["subtitle"] = f"decision rule: {a.rule}, coverage {a.confidence:g}; full phase (limit lines)"
     if gd is not None:
         bode_plot(profile.mask, a.freq_hz, a.gain_db, path=buf, group_delay_s=gd, phase_freq_hz=gd_f,
                   **{k: v for k, v in kwargs.items() if k not in ("phase_deg", "u_phase_deg")})

@@ -545,6 +545,14 @@ def _draw_group_delay(ax, mask, pf, gd, extra, handles, x_lo):
 
 def _draw_phase(ax, mask, pf, ph, u, extra, style, handles):
     keep = pf > 0
+    rule = mask.phase
+    if rule.rule == "limits" and np.any(keep):
+        # show the phase as the limits rule judges it: unwrapped, with its value at the
+        # first limit-line frequency in (-180, 180] (harness.mask.PhaseRule)
+        starts = [ln.start_hz for ln in (rule.upper, rule.lower) if ln is not None]
+        i = int(np.argmin(np.abs(np.log(np.where(keep, pf, 1e-30) / min(starts)))))
+        ph = np.asarray(ph, dtype=float)
+        ph = ph - 360.0 * np.round((ph[i] - (((ph[i] + 180.0) % 360.0) - 180.0)) / 360.0)
     if style == "points" and pf.size <= 300:
         if u is not None and np.size(u):
             ax.errorbar(pf[keep], ph[keep], yerr=np.asarray(u, float)[keep], fmt="none", ecolor="#7a8fb0",
@@ -563,7 +571,7 @@ def _draw_phase(ax, mask, pf, ph, u, extra, style, handles):
             ax.plot(tf[k], np.asarray(t.phase_deg, float)[k], color=t.colour or C_EXTRA[i % 3], lw=1.1,
                     ls=(0, (4, 3)), zorder=6)
     rule = mask.phase
-    lim_vals = []
+    lines = []
     if rule.rule == "limits":
         xs = _mask_grid(mask, max(pf[keep].min(), 1e-12) if np.any(keep) else 1.0, pf.max())
         for line, above in ((rule.upper, True), (rule.lower, False)):
@@ -571,22 +579,26 @@ def _draw_phase(ax, mask, pf, ph, u, extra, style, handles):
                 continue
             v = line.at(xs)
             fin = np.isfinite(v)
-            lim_vals.append(v[fin])
-            ax.plot(xs[fin], v[fin], color=C_BAD, lw=1.0, zorder=3)
-            big = 1e4
-            if above:
-                ax.fill_between(xs[fin], v[fin], big, facecolor=(0.78, 0.16, 0.16, 0.07),
-                                edgecolor=(0.78, 0.16, 0.16, 0.45), hatch="////", lw=0, zorder=1)
-            else:
-                ax.fill_between(xs[fin], -big, v[fin], facecolor=(0.78, 0.16, 0.16, 0.07),
-                                edgecolor=(0.78, 0.16, 0.16, 0.45), hatch="////", lw=0, zorder=1)
-            handles.setdefault("phaselimit", (ax.plot([], [], color=C_BAD, lw=1.0)[0], "phase limit"))
+            lines.append((xs[fin], v[fin], above))
     ax.set_ylabel("phase deg")
-    vals = _finite(ph[keep], *lim_vals)
+    vals = _finite(ph[keep], *[v for _, v, _ in lines])
+    lo = hi = None
     if vals.size:
         lo, hi = vals.min(), vals.max()
         pad = max(0.08 * (hi - lo), 2.0)
-        ax.set_ylim(lo - pad, hi + pad)
+        lo, hi = lo - pad, hi + pad
+        ax.set_ylim(lo, hi)
+    # forbidden regions drawn to the axis limits (a huge polygon edge can make the
+    # renderer hatch the allowed band too)
+    for x, v, above in lines:
+        ax.plot(x, v, color=C_BAD, lw=1.0, zorder=3)
+        edge = hi if above else lo
+        if edge is None:
+            continue
+        ax.fill_between(x, v, np.full(v.shape, edge), where=(v < edge) if above else (v > edge),
+                        facecolor=(0.78, 0.16, 0.16, 0.07), edgecolor=(0.78, 0.16, 0.16, 0.45),
+                        hatch="////", lw=0, zorder=1)
+        handles.setdefault("phaselimit", (ax.plot([], [], color=C_BAD, lw=1.0)[0], "phase limit"))
 
 
 def _save(fig: Figure, path):
