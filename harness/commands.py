@@ -69,8 +69,23 @@ def format_unit_line(result) -> str:
     return f"{result.serial:<22} {result.verdict.upper():<13} {worst}"
 
 
+# Modules that add verbs of their own (each has ``register(subparsers)``); a module that
+# is not installed is simply not offered.
+VERB_MODULES = ("harness.audio_cli", "harness.instruments_cli", "harness.line_cli")
+
+
 def register(sub) -> None:
-    """Add the measurement verbs to the top-level subparsers."""
+    """Add the measurement verbs (and those of `VERB_MODULES`) to the top-level subparsers."""
+    import importlib
+    import importlib.util
+
+    _register_core(sub)
+    for name in VERB_MODULES:
+        if importlib.util.find_spec(name) is not None:
+            importlib.import_module(name).register(sub)
+
+
+def _register_core(sub) -> None:
     run = sub.add_parser("run", help="measure one unit against a profile on a station",
                          epilog=SAFETY_NOTE)
     run.add_argument("profile", help="profile TOML file")

@@ -208,9 +208,15 @@ def make_backend(station: Station, *, device=None, seed: int | None = None):
         return SimulatedBoard(model, station.sample_rate_hz, reference_channel=station.reference_channel,
                               chain_latency_samples=station.chain_latency_samples,
                               seed=seed if seed is not None else station.seed)
-    raise ConfigError(station.path, "station.backend",
-                      f"the '{station.backend}' backend is not available in this version of the harness "
-                      "(available: simulated)")
+    module = {"audio": "harness.backends.audio", "visa": "harness.backends.visa"}.get(station.backend)
+    import importlib
+    import importlib.util
+
+    if module is None or importlib.util.find_spec(module) is None:
+        raise ConfigError(station.path, "station.backend",
+                          f"the '{station.backend}' backend is not available in this version of the harness")
+    # each hardware backend module provides open_backend(station) -> Backend
+    return importlib.import_module(module).open_backend(station)
 
 
 def run_from_files(profile_path, station_path, serial: str, *, out_dir=None, golden=None) -> UnitResult:

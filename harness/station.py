@@ -7,18 +7,33 @@ taken relative to the folder of the station file itself.
 
 from __future__ import annotations
 
+import importlib
+import importlib.util
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import Any
 
 from harness.config import Table, load_toml, sha256_hex
 from harness.errors import ConfigError
 from harness.uncertainty import TypeB
 
 BACKENDS = ("simulated", "audio", "visa")
-_TOP_KEYS = ("station", "calibration")
+_TOP_KEYS = ("station", "calibration", "line", "database", "signing")
 _STATION_KEYS = ("id", "backend", "device_model", "sample_rate_hz", "reference_channel",
                  "max_output_dbfs", "type_b", "chain_latency_samples", "output_dir",
-                 "description", "seed", "min_snr_db", "max_latency_samples")
+                 "description", "seed", "min_snr_db", "max_latency_samples",
+                 "audio", "visa", "control", "full_scale_volts", "max_output_volts")
+
+# Optional sections read by the module that uses them: (where, key) -> module with
+# ``parse_config(table: Table, *, base_dir: Path, station_id: str, backend: str)``.
+SECTION_MODULES = {
+    ("station", "audio"): "harness.backends.audio",
+    ("station", "visa"): "harness.backends.visa",
+    ("station", "control"): "harness.control",
+    ("top", "line"): "harness.line",
+    ("top", "database"): "harness.store",
+    ("top", "signing"): "harness.signing",
+}
 _TYPE_B_KEYS = ("level_db", "flatness_db", "phase_deg")
 _CAL_KEYS = ("file", "valid_days")
 
@@ -60,6 +75,13 @@ class Station:
     max_latency_samples: int = 4096
     path: str | None = None
     sha256: str | None = None
+    full_scale_volts: float | None = None
+    sections: dict[str, Any] = field(default_factory=dict)   # parsed optional sections by name
+
+    def section(self, name: str) -> Any:
+        """A parsed optional section (``audio``, ``visa``, ``control``, ``line``,
+        ``database``, ``signing``) or None."""
+        return self.sections.get(name)
 
 
 def _resolve(base: Path, value: str) -> Path:
@@ -85,6 +107,15 @@ def load_station(path: str | Path) -> Station:
     max_out = st.float("max_output_dbfs", max=0.0)
     if max_out < -120:
         raise st.error("max_output_dbfs", f"{max_out:g} dBFS leaves nothing to measure with")
+    fs_volts = st.float("full_scale_volts", None, min=0.0, min_exclusive=True)
+    max_volts = st.float("max_output_volts", None, min=0.0, min_exclusive=True)
+    if max_volts is not None:
+        if fs_volts is None:
+            raise st.error("max_output_volts", "needs full_scale_volts (the interface's output at 0 dBFS, volts peak)")
+        import math
+
+        # the tighter of the two limits applies: volts peak -> dBFS peak
+        max_out = min(max_out, 20.0 * math.log10(max_volts / fs_volts))
     model = st.str("device_model", None)
     device_model = None
     if backend == "simulated":
@@ -114,6 +145,19 @@ def load_station(path: str | Path) -> Station:
         cal_file = ct.str("file", None)
         cal = CalibrationConfig(file=None if cal_file is None else _resolve(base, cal_file),
                                 valid_days=ct.int("valid_days", 30, min=1, max=3650))
+    sections = {}
+    for (where, name), module in SECTION_MODULES.items():
+        holder = st if where == "station" else top
+        if not holder.has(name):
+            continue
+        if importlib.util.find_spec(module) is None:
+            raise holder.error(name, f"this version of the harness does not support [{holder.key(name)}]")
+        table = holder.table(name)
+        sections[name] = importlib.import_module(module).parse_config(table, base_dir=base, station_id=sid,
+                                                                      backend=backend)
+    for needed in ("audio", "visa"):
+        if backend == needed and needed not in sections:
+            raise st.error(needed, f"missing table [station.{needed}] (a {needed} station needs it)")
     if not ref and cal.file is None:
         raise ConfigError(file, "calibration.file", "missing key (a station without a reference channel "
                                                     "divides by a chain calibration and must name its file)")
@@ -122,4 +166,5 @@ def load_station(path: str | Path) -> Station:
                    type_b=type_b, calibration=cal,
                    output_dir=None if out_dir is None else _resolve(base, out_dir),
                    description=st.str("description", ""), seed=seed, min_snr_db=min_snr,
-                   max_latency_samples=max_lat, path=file, sha256=sha256_hex(raw))
+                   max_latency_samples=max_lat, path=file, sha256=sha256_hex(raw),
+                   full_scale_volts=fs_volts, sections=sections)
