@@ -64,8 +64,10 @@ def _cmd_recompute(args) -> int:
 def format_unit_line(result) -> str:
     """One summary line for a measured unit."""
     w = result.worst
-    worst = (f"worst {w['margin_db']:+.3f} dB at {w['frequency_hz']:.6g} Hz (U {w['U_gain_db']:.3f} dB)"
-             if w else "no points")
+    if result.verdict == "invalid" or not w:
+        worst = (result.reasons[0] if result.reasons else "no points measured")[:80]
+    else:
+        worst = f"worst {w['margin_db']:+.3f} dB at {w['frequency_hz']:.6g} Hz (U {w['U_gain_db']:.3f} dB)"
     return f"{result.serial:<22} {result.verdict.upper():<13} {worst}"
 
 
