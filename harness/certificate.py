@@ -386,11 +386,27 @@ def render_html(doc: dict, plot_png: bytes | None = None) -> str:
         parts.append(f"<h2>Phase</h2><p>{line}</p>")
     resp = doc.get("response") or {}
     meas = doc.get("measurement") or {}
-    mrows = [(k, meas[k]) for k in sorted(meas)] + [("bulk delay (s)", resp.get("delay_s")),
-                                                    ("u(bulk delay) (s)", resp.get("u_delay_s"))]
+    est = doc.get("estimate") or {}
+
+    def num(x, fmt):
+        return "—" if x is None else format(x, fmt)
+
+    mrows = [
+        ("method", meas.get("method")),
+        ("stimulus duration", f"{num(meas.get('duration_s'), '.3f')} s"),
+        ("stimulus peak level", f"{num(meas.get('level_dbfs'), '.1f')} dBFS"),
+        ("crest factor", f"{num(meas.get('crest_factor'), '.2f')}"),
+        ("samples captured", meas.get("capture_samples")),
+        ("frequencies not covered", ", ".join(f"{f:g} Hz" for f in meas.get("frequencies_not_covered_hz") or [])
+         or "none"),
+        ("bulk delay", f"{num(None if resp.get('delay_s') is None else resp['delay_s'] * 1e3, '.5f')} ms "
+                       f"(u = {num(None if resp.get('u_delay_s') is None else resp['u_delay_s'] * 1e6, '.3f')} µs)"),
+        ("clock offset", f"{num(est.get('clock_offset_ppm'), '+.3f')} ppm "
+                         f"(u = {num(est.get('u_clock_offset_ppm'), '.3f')} ppm)"),
+        ("distortion (unexcited lines)", f"{num(est.get('distortion_db') if isinstance(est.get('distortion_db'), float) else None, '.1f')} dB"),
+    ]
     parts.append("<h2>Measurement</h2><table class='kv'>" + "".join(
-        f"<tr><td>{e(str(k))}</td><td>{e(json.dumps(x) if isinstance(x, (list, dict)) else str(x))}</td></tr>"
-        for k, x in mrows) + "</table>")
+        f"<tr><td>{e(str(k))}</td><td>{e(str(x))}</td></tr>" for k, x in mrows) + "</table>")
     if resp.get("notes"):
         parts.append("<ul class='small'>" + "".join(f"<li>{e(n)}</li>" for n in resp["notes"]) + "</ul>")
     bud = (doc.get("budget") or {}).get("gain")

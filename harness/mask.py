@@ -7,7 +7,9 @@ when a profile is loaded, see `harness.units`); all gains are amplitude gains in
 Conventions
 -----------
 * A band covers the closed interval ``[start_hz, stop_hz]``; a point exactly on an edge
-  belongs to the band.
+  belongs to the band. "Exactly" allows a relative ``EDGE_RTOL`` (1e-9) so that an edge
+  converted from rad/sample (60 Hz = 2*pi*60/48000 rad/sample reads back as
+  60.00000000000001 Hz) still holds a point measured at 60 Hz.
 * Where several bands cover a frequency, every one of their limits applies (the
   tightest wins).
 * Frequencies covered by no band are transition bands: no limit, unless the mask has a
@@ -28,6 +30,7 @@ import numpy as np
 from harness.units import db_from_gain
 
 BAND_KINDS = ("pass", "stop", "limits")
+EDGE_RTOL = 1e-9
 PHASE_RULES = ("none", "linear", "zero", "limits")
 
 
@@ -122,7 +125,7 @@ class Band:
 
     def covers(self, freq_hz) -> np.ndarray:
         f = np.asarray(freq_hz, dtype=float)
-        return (f >= self.start_hz) & (f <= self.stop_hz)
+        return (f >= self.start_hz * (1 - EDGE_RTOL)) & (f <= self.stop_hz * (1 + EDGE_RTOL))
 
     def limits_at(self, freq_hz) -> tuple[np.ndarray, np.ndarray]:
         """(low_db, high_db) this band imposes at `freq_hz`; -inf / +inf where it

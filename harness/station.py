@@ -155,9 +155,6 @@ def load_station(path: str | Path) -> Station:
         table = holder.table(name)
         sections[name] = importlib.import_module(module).parse_config(table, base_dir=base, station_id=sid,
                                                                       backend=backend)
-    for needed in ("audio", "visa"):
-        if backend == needed and needed not in sections:
-            raise st.error(needed, f"missing table [station.{needed}] (a {needed} station needs it)")
     if not ref and cal.file is None:
         raise ConfigError(file, "calibration.file", "missing key (a station without a reference channel "
                                                     "divides by a chain calibration and must name its file)")
