@@ -99,36 +99,54 @@ def new_stem(out_dir: Path, serial: str, when: _dt.datetime) -> str:
 # --------------------------------------------------------------------------------------
 # raw capture
 # --------------------------------------------------------------------------------------
+def stimulus_sha256(stimulus: np.ndarray) -> str:
+    """SHA-256 of the played stimulus as little-endian float64 samples."""
+    return hashlib.sha256(np.asarray(stimulus, dtype="<f8").tobytes()).hexdigest()
+
+
+def quantize_capture(capture: Capture) -> Capture:
+    """The capture as it is stored: both channels rounded to float32 (24-bit mantissa,
+    enough for any audio converter or digitiser). The analysis runs on exactly these
+    samples, so the certificate recomputes bit for bit from the raw file."""
+    def q(x):
+        return None if x is None else np.asarray(x, dtype=np.float32).astype(np.float64)
+
+    return Capture(q(capture.response), q(capture.reference), capture.sample_rate_hz, dict(capture.metadata))
+
+
 def raw_bytes(stimulus: np.ndarray, capture: Capture, plan_info: dict,
               calibration: ChainCalibration | None = None) -> bytes:
-    """The raw capture as .npz bytes: played stimulus, captured channels, sample rate,
-    the plan description and (when used) the chain calibration divided by."""
+    """The raw capture as .npz bytes: the captured channels (float32), the sample rate,
+    the SHA-256 of the played stimulus (which the profile regenerates), the plan
+    description and (when used) the chain calibration divided by. Uncompressed: noise
+    does not compress, and writing must not slow a production line."""
     arrays = {
-        "stimulus": np.asarray(stimulus, dtype=np.float64),
-        "response": np.asarray(capture.response, dtype=np.float64),
+        "stimulus_sha256": np.frombuffer(stimulus_sha256(stimulus).encode(), dtype=np.uint8),
+        "response": np.asarray(capture.response, dtype=np.float32),
         "sample_rate_hz": np.float64(capture.sample_rate_hz),
         "plan_json": np.frombuffer(json.dumps(plan_info, sort_keys=True).encode(), dtype=np.uint8),
         "metadata_json": np.frombuffer(json.dumps(_jsonable(capture.metadata), sort_keys=True).encode(),
                                        dtype=np.uint8),
     }
     if capture.reference is not None:
-        arrays["reference"] = np.asarray(capture.reference, dtype=np.float64)
+        arrays["reference"] = np.asarray(capture.reference, dtype=np.float32)
     if calibration is not None:
         arrays.update(cal_freq_hz=calibration.freq_hz, cal_h=calibration.h,
                       cal_u_gain_db=calibration.u_gain_db, cal_u_phase_deg=calibration.u_phase_deg,
                       cal_dof=calibration.dof,
                       cal_id=np.frombuffer(calibration.id.encode(), dtype=np.uint8))
     buf = io.BytesIO()
-    np.savez_compressed(buf, **arrays)
+    np.savez(buf, **arrays)
     return buf.getvalue()
 
 
-def read_raw(data: bytes) -> tuple[np.ndarray, Capture, dict, ChainCalibration | None]:
+def read_raw(data: bytes) -> tuple[str, Capture, dict, ChainCalibration | None]:
+    """(stimulus SHA-256, capture as float64, plan description, calibration or None)."""
     with np.load(io.BytesIO(data), allow_pickle=False) as z:
-        stim = z["stimulus"]
-        ref = z["reference"] if "reference" in z.files else None
+        stim = bytes(z["stimulus_sha256"]).decode()
+        ref = z["reference"].astype(np.float64) if "reference" in z.files else None
         meta = json.loads(bytes(z["metadata_json"]).decode())
-        cap = Capture(z["response"], ref, float(z["sample_rate_hz"]), meta)
+        cap = Capture(z["response"].astype(np.float64), ref, float(z["sample_rate_hz"]), meta)
         plan_info = json.loads(bytes(z["plan_json"]).decode())
         cal = None
         if "cal_h" in z.files:
@@ -299,7 +317,7 @@ def recompute(cert_path: str | Path, profile_path: str | Path | None = None) -> 
         return diffs
     stim, cap, plan_info, cal = read_raw(data)
     plan = plan_for_profile(profile, cap.sample_rate_hz)
-    if not np.array_equal(np.asarray(plan.signal(), dtype=np.float64), stim):
+    if stimulus_sha256(plan.signal()) != stim:
         diffs.append("stimulus: the profile's plan no longer generates the played stimulus")
         return diffs
     facts = StationFacts.from_dict(cert["station"]["facts"])

@@ -119,6 +119,7 @@ def measure_unit(profile: Profile, station: Station, serial: str, *, backend: Ba
         capture = None
         analysis = Analysis("invalid", [exc.reason], profile.decision.rule, profile.decision.confidence)
     else:
+        capture = certs.quantize_capture(capture)     # analyse exactly what is stored
         analysis = analyze(profile, plan, capture, facts, calibration)
 
     out_dir.mkdir(parents=True, exist_ok=True)
