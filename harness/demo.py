@@ -168,7 +168,8 @@ def run_demo(out_dir: Path, units: int = 10, seed: int = 2612, out=sys.stdout) -
         wm = f"{w['margin_db']:+.3f} dB" if w else "-"
         wf = f"{w['frequency_hz']:.6g}" if w else "-"
         wu = f"{w['U_gain_db']:.3f}" if w else "-"
-        p(f"   {r.serial:<16} {r.verdict.upper():<13} {wm:>13} {wf:>9} {wu:>7}  {(reason[:69] + "…") if len(reason) > 70 else reason}")
+        short = reason if len(reason) <= 70 else reason[:69] + "\u2026"
+        p(f"   {r.serial:<16} {r.verdict.upper():<13} {wm:>13} {wf:>9} {wu:>7}  {short}")
     p("")
     p(f"   pass {counts['pass']}, fail {counts['fail']}, inconclusive {counts['inconclusive']}, "
       f"invalid {counts['invalid']} of {len(results)} boards; {elapsed:.1f} s measuring")
