@@ -90,7 +90,7 @@ def _profile_copy(profile: Profile, out_dir: Path) -> str | None:
 
 def measure_unit(profile: Profile, station: Station, serial: str, *, backend: Backend, out_dir: Path,
                  unit: dict | None = None, calibration: ChainCalibration | None = None,
-                 calibration_info: dict | None = None, plan=None, write_plot: bool = True) -> UnitResult:
+                 calibration_info: dict | None = None, plan=None, write_plot: bool | str = True) -> UnitResult:
     """Measure one unit and write its certificate (JSON + HTML + raw .npz) into `out_dir`.
 
     Parameters
@@ -102,6 +102,9 @@ def measure_unit(profile: Profile, station: Station, serial: str, *, backend: Ba
     unit : extra unit facts for the certificate (``model``, ``firmware``).
     calibration : chain calibration to divide by when the station has no reference channel.
     plan : a prepared stimulus plan (default: built from the profile for the station).
+    write_plot : True, False, or ``"not-pass"`` (plot only units that did not pass).
+
+    A station with a ``[signing]`` section signs the certificate (`harness.signing`).
     """
     from harness.stimulus import plan_for_profile
 
@@ -152,9 +155,13 @@ def measure_unit(profile: Profile, station: Station, serial: str, *, backend: Ba
                                    issued_utc=when.strftime("%Y-%m-%dT%H:%M:%SZ"))
     if profile_file:
         cert["profile"]["file"] = profile_file
+    if station.section("signing") is not None:     # Ed25519 signature block (harness.signing)
+        from harness.signing import sign_for_station
+
+        cert = sign_for_station(cert, station.section("signing"))
 
     png = None
-    if write_plot and analysis.freq_hz.size:
+    if write_plot and (write_plot != "not-pass" or analysis.verdict != "pass") and analysis.freq_hz.size:
         png = certificate_plot(profile, analysis, serial)
     raw_path = certs.write_new_file(out_dir / raw_name, raw)
     json_path = certs.write_new_file(out_dir / f"{stem}.json", certs.canonical_json(cert))
