@@ -31,7 +31,8 @@ STIMULUS_METHODS = ("multitone", "stepped-sine")
 SPACINGS = ("log", "linear")
 DOMAINS = ("digital", "analog")
 
-_TOP_KEYS = ("schema", "profile", "band", "phase", "stimulus", "decision", "control")
+_TOP_KEYS = ("schema", "profile", "band", "phase", "stimulus", "decision", "control",
+             "line")   # [line]: the product's retest policy, read and validated by harness.line
 _PROFILE_KEYS = ("id", "title", "revision", "sample_rate_hz", "reference_hz", "domain",
                  "transition_max_db", "description")
 _BAND_KEYS = ("kind", "label", "start_hz", "start_rad", "start_nyquist", "stop_hz", "stop_rad",
