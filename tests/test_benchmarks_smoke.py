@@ -63,6 +63,10 @@ def test_coverage_figures_are_sane(smoke):
     # finite dof: Student-t k above the normal 1.960 (JCGM 100 Table G.2), below k(nu=1) = 12.71
     assert 1.96 < r["mean_k_gain"] < 12.71 and 1.96 < r["mean_k_phase"] < 12.71
     assert r["mean_nu_eff_gain"] >= 1 and r["mean_nu_eff_phase"] >= 1
+    # drift-test false alarms: F(2, m) survival has the closed form (1 + 2x/m)^(-m/2),
+    # here x = 16, m = 2 (P - 2) with P = 8 measured periods
+    assert r["drift_false_alarm_expected"] == pytest.approx((1 + 2 * 16 / 12) ** -6, rel=1e-9)
+    assert 0 <= r["drift_false_alarm_rate"] <= 0.05
 
 
 def test_duration_search_reports_settings_that_met_the_target(smoke):

@@ -15,6 +15,13 @@ as the analysis removed from the measured one (so the comparison is of ``angle(h
 Points the analysis judges on a noise-floor bound (SNR below the station's 20 dB) make no
 claim of coverage and are left out; their count is reported.
 
+Also counted: points to which the estimator added its "still settling" drift allowance.
+The KD-8 is settled after its transient period, so every such point is a false alarm
+of the drift test (a line fitted over the P periods, slope significant when
+``|c1|^2 > 16 var(c1)``). For white noise the test statistic is F(2, 2(P-2))
+distributed (circular complex Gaussian period spectra), so the expected rate is
+``scipy.stats.f.sf(16, 2, 2 (P - 2))`` per point.
+
 The standard error of a coverage is taken from the scatter of the per-trial coverages
 (points within one trial share the reference point's noise, so they are not
 independent).
@@ -25,6 +32,7 @@ from __future__ import annotations
 import math
 
 import numpy as np
+from scipy import stats
 
 from harness.analysis import analyze
 from harness.backends.simulated import SimulatedBoard
@@ -63,6 +71,8 @@ def run(*, trials: int = 2000, noise_dbfs: float = NOISE_DBFS, seed: int = 1) ->
     cov_g, cov_p, k_g, k_p, nu_g, nu_p = [], [], [], [], [], []
     z_g, z_p = [], []
     verdicts: dict = {}
+    drift_points = 0
+    drift_checked = 0
     excluded = 0
     used = 0
     for t in range(trials):
@@ -73,6 +83,8 @@ def run(*, trials: int = 2000, noise_dbfs: float = NOISE_DBFS, seed: int = 1) ->
         verdicts[a.verdict] = verdicts.get(a.verdict, 0) + 1
         if a.gain is None:                        # an invalid analysis has no budget
             continue
+        drift_points += int(a.estimate.get("details", {}).get("drifting_points", 0))
+        drift_checked += int(a.freq_hz.size)
         if truth_h is None:
             truth_h = board.true_response(a.freq_hz)
         g_true = 20 * np.log10(np.abs(truth_h))
@@ -112,6 +124,9 @@ def run(*, trials: int = 2000, noise_dbfs: float = NOISE_DBFS, seed: int = 1) ->
         "mean_nu_eff_phase": float(np.mean(np.concatenate(nu_p))),
         # the spread of the normalised errors (should be about 1 when u_c is right)
         "sd_error_over_uc_gain": float(np.std(zg)), "sd_error_over_uc_phase": float(np.std(zp)),
+        "drift_allowance_points": drift_points, "drift_points_checked": drift_checked,
+        "drift_false_alarm_rate": drift_points / drift_checked if drift_checked else float("nan"),
+        "drift_false_alarm_expected": float(stats.f.sf(16.0, 2, 2 * (plan.periods - 2))),
     }
     rows = []
     k_normal = 1.959963984540054        # scipy.stats.norm.ppf(0.975): k for infinite dof (GUM G.3)
@@ -123,6 +138,10 @@ def run(*, trials: int = 2000, noise_dbfs: float = NOISE_DBFS, seed: int = 1) ->
         rows.append(Row(BENCH, f"  {q}: mean coverage factor k", res[f"mean_k_{q}"], k_normal, "",
                         res[f"mean_k_{q}"] / k_normal, "x normal k"))
         rows.append(Row(BENCH, f"  {q}: mean effective dof", res[f"mean_nu_eff_{q}"], None, "", None, ""))
+    exp_rate = res["drift_false_alarm_expected"]
+    rows.append(Row(BENCH, "drift allowance false alarms per point", res["drift_false_alarm_rate"], exp_rate, "",
+                    res["drift_false_alarm_rate"] / exp_rate if exp_rate > 0 else None, "x F(2,2P-4)",
+                    extra={"points": drift_points, "checked": drift_checked}))
     return {"name": "coverage", "rows": rows, "results": res,
             "settings": {"trials": trials, "noise_dbfs": noise_dbfs, "seed": seed, "board": model.id,
                          "profile": "KD-8 mask (tests/benchmarks/common.py KD8_PROFILE)",
