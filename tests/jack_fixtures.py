@@ -1,0 +1,271 @@
+"""Fixtures of the real audio path: a private JACK server (dummy driver), a simulated
+board as a separate JACK client process (`harness.jackboard`), and the wiring between
+them and the harness's PortAudio stream.
+
+Imported by tests/test_audio_jack.py. Every process started here runs in its own
+process group and is stopped (SIGTERM, then SIGKILL) in the fixture finalizers, also
+when a test fails.
+
+Without jackd, JACK-Client or PortAudio the tests skip locally with a message saying
+what to install; in CI (environment variable CI set) they fail instead.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import shutil
+import signal
+import subprocess
+import sys
+import time
+import uuid
+from pathlib import Path
+
+import pytest
+
+ROOT = Path(__file__).resolve().parents[1]
+FIXTURES = ROOT / "fixtures"
+JACK_RATE_HZ = 48000
+JACK_PERIOD = int(os.environ.get("HARNESS_JACK_PERIOD", "256"))
+HOW_TO_ENABLE = ("install the Debian packages jackd2 and libportaudio2 and the test extra "
+                 "(pip install -e '.[test]', which brings JACK-Client); then run pytest again")
+
+
+def _unavailable() -> str | None:
+    if shutil.which("jackd") is None:
+        return "jackd (the JACK server) is not installed"
+    try:
+        import jack  # noqa: F401
+    except (ImportError, OSError) as exc:
+        return f"the JACK-Client package or libjack cannot be loaded ({exc})"
+    try:
+        import sounddevice  # noqa: F401
+    except (ImportError, OSError) as exc:
+        return f"sounddevice / PortAudio cannot be loaded ({exc})"
+    return None
+
+
+def need_jack() -> None:
+    """Skip (locally) or fail (in CI) when the JACK path cannot run."""
+    why = _unavailable()
+    if why is None:
+        return
+    msg = f"audio path through JACK not tested: {why}; to enable: {HOW_TO_ENABLE}"
+    if os.environ.get("CI"):
+        pytest.fail(msg + " (CI must run these tests)", pytrace=False)
+    pytest.skip(msg)
+
+
+def _stop(proc: subprocess.Popen | None, timeout: float = 3.0) -> None:
+    """Terminate a process group started with start_new_session, then kill it."""
+    if proc is None or proc.poll() is not None:
+        return
+    for sig, wait in ((signal.SIGTERM, timeout), (signal.SIGKILL, timeout)):
+        try:
+            os.killpg(proc.pid, sig)
+        except ProcessLookupError:
+            return
+        try:
+            proc.wait(wait)
+            return
+        except subprocess.TimeoutExpired:
+            continue
+
+
+class Board:
+    """A running `harness.jackboard` process and its control pipe."""
+
+    def __init__(self, model: Path, server: str, log_dir: Path, name: str = "board"):
+        self.model = Path(model)
+        self.name = name
+        self.dirty = False
+        self._stderr = open(log_dir / f"board-{uuid.uuid4().hex[:6]}.log", "w")
+        self.proc = subprocess.Popen([sys.executable, "-m", "harness.jackboard", str(model), "--name", name,
+                                      "--server", server],
+                                     stdin=subprocess.PIPE, stdout=subprocess.PIPE, stderr=self._stderr,
+                                     text=True, bufsize=1, start_new_session=True, cwd=str(ROOT))
+        line = self.proc.stdout.readline()
+        if not line.startswith("ready "):
+            self.stop()
+            raise RuntimeError(f"the board process did not start: {line!r}; log {self._stderr.name}: "
+                               f"{Path(self._stderr.name).read_text()[-2000:]}")
+        self.info = json.loads(line[6:])
+
+    def command(self, text: str) -> str:
+        self.proc.stdin.write(text + "\n")
+        self.proc.stdin.flush()
+        answer = self.proc.stdout.readline().strip()
+        if not answer or answer.startswith("error"):
+            raise RuntimeError(f"board command {text!r}: {answer!r}")
+        if text.split()[0] in ("stall", "disconnect"):
+            self.dirty = True
+        return answer
+
+    def status(self) -> dict:
+        return json.loads(self.command("status")[len("status "):])
+
+    def stop(self) -> None:
+        try:
+            if self.proc.poll() is None and self.proc.stdin:
+                self.proc.stdin.close()          # end of input: the board leaves by itself
+                self.proc.wait(2)
+        except (OSError, subprocess.TimeoutExpired):
+            pass
+        _stop(self.proc)
+        self._stderr.close()
+
+
+class JackRig:
+    """A private JACK server, the board, and the wiring of the harness's stream.
+
+    ``route`` decides how a newly opened PortAudio stream is wired (by the stream-open
+    hook of harness.backends.audio, before the stream starts):
+
+    * ``"board"``: output 1 -> board in; board out -> input 1; output 1 -> input 2
+      (the reference: a direct loopback);
+    * ``"loopback"``: output 1 -> input 1 and input 2 (the board replaced by a through
+      connection, for a chain calibration);
+    * ``"open"``: output 1 -> board in and input 2; nothing reaches input 1 (the cable
+      from the board's output is not plugged).
+    """
+
+    def __init__(self, tmp: Path):
+        import jack
+
+        self.tmp = tmp
+        self.server = f"harness-ci-{os.getpid()}-{uuid.uuid4().hex[:6]}"
+        self._env_before = {k: os.environ.get(k) for k in
+                            ("JACK_DEFAULT_SERVER", "JACK_NO_START_SERVER", "JACK_NO_AUDIO_RESERVATION")}
+        os.environ.update(JACK_DEFAULT_SERVER=self.server, JACK_NO_START_SERVER="1",
+                          JACK_NO_AUDIO_RESERVATION="1")
+        self.jackd_log = tmp / "jackd.log"
+        self._log = open(self.jackd_log, "w")
+        cmd = ["jackd", "--no-realtime", "-n", self.server, "-d", "dummy", "-r", str(JACK_RATE_HZ),
+               "-p", str(JACK_PERIOD), "-C", "2", "-P", "2"]
+        self.jackd = subprocess.Popen(cmd, stdout=self._log, stderr=subprocess.STDOUT, stdin=subprocess.DEVNULL,
+                                      start_new_session=True)
+        self.board: Board | None = None
+        self.route = "board"
+        self.client = None
+        deadline = time.monotonic() + 15.0
+        while True:
+            if self.jackd.poll() is not None:
+                raise RuntimeError(f"jackd exited ({self.jackd.returncode}): {self.jackd_log.read_text()[-2000:]}")
+            try:
+                self.client = jack.Client("wiring", servername=self.server, no_start_server=True)
+                break
+            except jack.JackError:
+                if time.monotonic() > deadline:
+                    raise RuntimeError(f"jackd did not come up: {self.jackd_log.read_text()[-2000:]}") from None
+                time.sleep(0.1)
+        self.client.activate()
+        self.rescan()
+
+    # -- PortAudio ------------------------------------------------------------------
+    @staticmethod
+    def rescan() -> None:
+        """Re-initialise PortAudio so it lists the JACK server's clients as devices."""
+        import sounddevice as sd
+
+        sd._terminate()
+        sd._initialize()
+
+    def portaudio_ports(self) -> dict:
+        ports = {p.name.split(":", 1)[1]: p.name for p in self.client.get_ports("PortAudio.*", is_audio=True)}
+        return ports
+
+    # -- the board ------------------------------------------------------------------
+    def start_board(self, model: Path) -> Board:
+        """The board process running `model` (restarted when another model or a stalled /
+        disconnected board is running)."""
+        if self.board is not None and self.board.model == Path(model) and not self.board.dirty \
+                and self.board.proc.poll() is None:
+            self.board.command("reset")
+            return self.board
+        self.stop_board()
+        self.board = Board(Path(model), self.server, self.tmp)
+        return self.board
+
+    def stop_board(self) -> None:
+        if self.board is not None:
+            self.board.stop()
+            self.board = None
+
+    # -- wiring -----------------------------------------------------------------------
+    def hook(self, info: dict) -> None:
+        """harness.backends.audio stream-open hook: wire the new stream by `route`."""
+        self.rewire(self.route)
+
+    def rewire(self, route: str) -> None:
+        """Wire the open PortAudio stream (disconnecting whatever it had): see the class."""
+        self.route = route
+        pa = self.portaudio_ports()
+        out0, in0, in1 = pa.get("out_0"), pa.get("in_0"), pa.get("in_1")
+        if out0 is None or in0 is None:
+            raise RuntimeError(f"no PortAudio stream ports to wire: {sorted(pa)}")
+        for name in (out0, in0, in1):
+            if name is None:
+                continue
+            for other in self.client.get_all_connections(name):
+                if other.is_output:
+                    self.client.disconnect(other, name)
+                else:
+                    self.client.disconnect(name, other)
+        board_in = f"{self.board.name}:in_1" if self.board else None
+        board_out = f"{self.board.name}:out_1" if self.board else None
+        pairs = []
+        if route == "board":
+            pairs = [(out0, board_in), (board_out, in0)]
+        elif route == "loopback":
+            pairs = [(out0, in0)]
+        elif route == "open":
+            pairs = [(out0, board_in)]
+        else:
+            raise ValueError(route)
+        if in1 is not None:
+            pairs.append((out0, in1))
+        for src, dst in pairs:
+            if src is None or dst is None:
+                raise RuntimeError(f"route {route!r} needs a running board")
+            self.client.connect(src, dst)
+
+    def close(self) -> None:
+        import sounddevice as sd
+
+        try:
+            self.stop_board()
+        finally:
+            try:
+                if self.client is not None:
+                    self.client.deactivate()
+                    self.client.close()
+            except Exception:
+                pass
+            # PortAudio must leave the server while it still runs: its JACK host API
+            # aborts the process when it terminates against a vanished server
+            sd._terminate()
+            _stop(self.jackd)
+            self._log.close()
+            for k, v in self._env_before.items():
+                if v is None:
+                    os.environ.pop(k, None)
+                else:
+                    os.environ[k] = v
+            sd._initialize()                   # PortAudio again, without the JACK server
+
+
+@pytest.fixture(scope="module")
+def jack_rig(tmp_path_factory):
+    """A private JACK server with the dummy driver at 48 kHz, the wiring client, PortAudio
+    re-initialised to see it, and the stream-open hook installed."""
+    need_jack()
+    from harness.backends import audio
+
+    rig = JackRig(tmp_path_factory.mktemp("jack"))
+    old = audio.set_stream_open_hook(rig.hook)
+    try:
+        yield rig
+    finally:
+        audio.set_stream_open_hook(old)
+        rig.close()
