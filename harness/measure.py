@@ -90,7 +90,8 @@ def _profile_copy(profile: Profile, out_dir: Path) -> str | None:
 
 def measure_unit(profile: Profile, station: Station, serial: str, *, backend: Backend, out_dir: Path,
                  unit: dict | None = None, calibration: ChainCalibration | None = None,
-                 calibration_info: dict | None = None, plan=None, write_plot: bool | str = True) -> UnitResult:
+                 calibration_info: dict | None = None, plan=None, write_plot: bool | str = True,
+                 golden=None) -> UnitResult:
     """Measure one unit and write its certificate (JSON + HTML + raw .npz) into `out_dir`.
 
     Parameters
@@ -103,6 +104,8 @@ def measure_unit(profile: Profile, station: Station, serial: str, *, backend: Ba
     calibration : chain calibration to divide by when the station has no reference channel.
     plan : a prepared stimulus plan (default: built from the profile for the station).
     write_plot : True, False, or ``"not-pass"`` (plot only units that did not pass).
+    golden : a `harness.golden.GoldenUnit` to compare the measured response with (the
+        unit on the station is the golden unit; a failed check makes the result invalid).
 
     A station with a ``[signing]`` section signs the certificate (`harness.signing`).
     """
@@ -117,12 +120,23 @@ def measure_unit(profile: Profile, station: Station, serial: str, *, backend: Ba
     when = _dt.datetime.now(_dt.timezone.utc)
     extra = plan.extra_samples(int(station.max_latency_samples))
     try:
-        capture = backend.play_and_capture(stimulus, extra_samples=extra)
+        steps = getattr(backend, "measure_steps", None)     # instrument-native stepped sine (visa)
+        if steps is not None and getattr(plan, "method", None) == "stepped-sine":
+            capture = steps(plan, extra_samples=extra)
+        else:
+            capture = backend.play_and_capture(stimulus, extra_samples=extra)
     except InvalidMeasurement as exc:
         capture = None
         analysis = Analysis("invalid", [exc.reason], profile.decision.rule, profile.decision.confidence)
     else:
         capture = certs.quantize_capture(capture)     # analyse exactly what is stored
+        # stored with the capture so that the analysis (and a recomputation) sees them:
+        # whether the calibration shares the capture's stream session (phase, no
+        # reference channel) and the golden unit's stored response
+        if calibration is not None and capture.metadata.get("stream_session"):
+            capture.metadata["calibration_stream_session"] = (calibration_info or {}).get("stream_session")
+        if golden is not None:
+            capture.metadata["golden"] = golden.metadata_entry(profile)
         analysis = analyze(profile, plan, capture, facts, calibration)
 
     out_dir.mkdir(parents=True, exist_ok=True)
@@ -155,6 +169,8 @@ def measure_unit(profile: Profile, station: Station, serial: str, *, backend: Ba
                                    issued_utc=when.strftime("%Y-%m-%dT%H:%M:%SZ"))
     if profile_file:
         cert["profile"]["file"] = profile_file
+    if getattr(analysis, "golden_check", None):
+        cert["golden_check"] = analysis.golden_check
     if station.section("signing") is not None:     # Ed25519 signature block (harness.signing)
         from harness.signing import sign_for_station
 
@@ -235,13 +251,23 @@ def run_from_files(profile_path, station_path, serial: str, *, out_dir=None, gol
 
     profile = load_profile(profile_path)
     station = load_station(station_path)
+    if golden is not None:
+        from harness.golden import load_golden
+
+        golden = load_golden(golden, profile=profile)
     cal, cal_info = load_calibration(station)
+    from harness.control import prepare_board
+
+    # [station.control]: board identity into the unit, the profile's [control] mode and
+    # gain set before measuring (raises InvalidMeasurement, exit 4, when it cannot be)
+    board = prepare_board(station, profile, serial)
     backend = make_backend(station)
     try:
         ident = backend.identity()
         unit = {"model": ident.get("model"), "firmware": ident.get("firmware")}
+        unit.update(board)
         out = Path(out_dir) if out_dir else (station.output_dir or Path("harness-out"))
         return measure_unit(profile, station, serial, backend=backend, out_dir=out, unit=unit,
-                            calibration=cal, calibration_info=cal_info)
+                            calibration=cal, calibration_info=cal_info, golden=golden)
     finally:
         backend.close()
