@@ -105,6 +105,21 @@ COLUMNS = (("#", 3), ("case", 51), ("measured", 15), ("reference", 15), ("ratio"
            ("met", 3))
 
 
+LEGEND = {
+    "CRB/var": "efficiency = Cramer-Rao bound / empirical variance (1 ideal); met when >= 1 - 3 se, "
+               "se = sqrt(2/(M-1)) for M trials",
+    "x nominal": "coverage / 0.95",
+    "x normal k": "mean coverage factor / 1.960 (normal k, infinite dof)",
+    "x F(2,2P-4)": "false-alarm rate / the F-distribution rate for noise alone",
+    "run/pred": "shortest duration found by running / shortest that plan.report predicts",
+    "mt/ss": "multitone duration / stepped-sine duration",
+    "ours/H1": "RMS error of estimate_multitone / RMS error of H1 (< 1: ours closer to the truth)",
+    "fraction": "analysis wall time / capture duration",
+    "x capture": "tracemalloc peak / size of the two captured channels",
+    "share": "share of estimate_multitone's time (cProfile, direct callees)",
+}
+
+
 def format_table(rows: list[Row], header: dict) -> str:
     """Fixed-width table with a short header (machine, versions, date, run mode)."""
     lines = [
@@ -127,6 +142,9 @@ def format_table(rows: list[Row], header: dict) -> str:
         cells = [i, r.case, fmt(r.measured, r.unit),
                  fmt(r.reference, r.unit) if r.reference is not None else "-", ratio, r.target, met]
         lines.append(" ".join(f"{str(c):<{w}}" for c, (_, w) in zip(cells, COLUMNS)).rstrip())
+    used = [k for k in LEGEND if any(r.ratio_is == k for r in rows)]
+    if used:
+        lines += ["", "ratio:"] + [f"  {k:<12} {LEGEND[k]}" for k in used]
     return "\n".join(lines)
 
 

@@ -260,11 +260,11 @@ def run(*, noise_levels_dbfs=NOISE_LEVELS_DBFS, repeats: int = 3, seed: int = 1,
         mt_pd = lev["multitone_predicted"]["duration_s"] if lev["multitone_predicted"] else None
         ss_pd = lev["stepped_sine_predicted"]["duration_s"] if lev["stepped_sine_predicted"] else None
         tag = f"noise {noise:g} dBFS"
-        mt_set = f"P={lev['multitone']['periods']}" if lev["multitone"] else "not reached"
-        ss_set = (f"c={best_ss[0]},{best_ss[1] * 1e3:.3g}ms" if best_ss else "not reached")
-        rows.append(Row(BENCH, f"{tag}: multitone {mt_set} (run/plan.report)", mt_d, mt_pd, "s",
+        mt_set = f"(1+{lev['multitone']['periods']}) x {period}" if lev["multitone"] else "not reached"
+        ss_set = (f"cycles {best_ss[0]}, {best_ss[1] * 1e3:.3g} ms" if best_ss else "not reached")
+        rows.append(Row(BENCH, f"{tag}: multitone {mt_set}", mt_d, mt_pd, "s",
                         None if (mt_d is None or not mt_pd) else mt_d / mt_pd, "run/pred"))
-        rows.append(Row(BENCH, f"{tag}: stepped {ss_set} (run/plan.report)", ss_d, ss_pd, "s",
+        rows.append(Row(BENCH, f"{tag}: stepped sine {ss_set}", ss_d, ss_pd, "s",
                         None if (ss_d is None or not ss_pd) else ss_d / ss_pd, "run/pred"))
         rows.append(Row(BENCH, f"{tag}: multitone vs stepped sine", mt_d, ss_d, "s",
                         None if (mt_d is None or not ss_d) else mt_d / ss_d, "mt/ss"))
