@@ -62,9 +62,21 @@ class ChainCalibration:
     dof: np.ndarray
     id: str = ""
 
+    def delay_s(self) -> float:
+        """Bulk delay of the chain (s): the weighted straight line through its phase
+        (tracked unwrapping, as the estimator fits a device's delay). A stream latency of
+        hundreds of samples turns the phase many times between calibration points; it
+        is taken out before interpolating and put back after."""
+        from harness.estimate import _fit_delay
+
+        w = 2 * np.pi * np.asarray(self.freq_hz, dtype=float)
+        u = np.radians(np.maximum(np.asarray(self.u_phase_deg, dtype=float), 1e-6))
+        return float(_fit_delay(w, np.angle(self.h), u)[0]) if w.size >= 2 else 0.0
+
     def at(self, freq_hz) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
         """Chain response and its uncertainty at `freq_hz`: magnitude (dB) and phase
-        interpolated linearly over log-frequency; uncertainty from the larger neighbour."""
+        (bulk delay `delay_s` removed) interpolated linearly over log-frequency, the delay
+        put back exactly; uncertainty from the larger neighbour."""
         f = np.asarray(freq_hz, dtype=float)
         lf, lq = np.log10(self.freq_hz), np.log10(f)
         if np.any(lq < lf[0] - 1e-9) or np.any(lq > lf[-1] + 1e-9):
@@ -72,7 +84,9 @@ class ChainCalibration:
                 f"chain calibration {self.id or ''} covers {self.freq_hz[0]:g}..{self.freq_hz[-1]:g} Hz, "
                 f"the measurement needs {f.min():g}..{f.max():g} Hz; calibrate over the full range")
         mag_db = np.interp(lq, lf, 20 * np.log10(np.abs(self.h)))
-        ph = np.interp(lq, lf, np.unwrap(np.angle(self.h)))
+        d = self.delay_s()
+        res = self.h * np.exp(2j * np.pi * self.freq_hz * d)
+        ph = np.interp(lq, lf, np.unwrap(np.angle(res))) - 2 * np.pi * f * d
         idx = np.clip(np.searchsorted(lf, lq), 1, len(lf) - 1)
         ug = np.maximum(self.u_gain_db[idx - 1], self.u_gain_db[idx])
         up = np.maximum(self.u_phase_deg[idx - 1], self.u_phase_deg[idx])
@@ -146,9 +160,39 @@ def analyze(profile: Profile, plan, capture, station: StationFacts,
     except InvalidMeasurement as exc:
         return Analysis("invalid", [exc.reason], d.rule, d.confidence)
     try:
-        return _analyze_estimate(profile, est, station, calibration)
+        a = _analyze_estimate(profile, est, station, calibration, phase_not_assessed(station, capture))
     except InvalidMeasurement as exc:
         return Analysis("invalid", [exc.reason], d.rule, d.confidence, estimate=_est_dict(est))
+    golden = (getattr(capture, "metadata", None) or {}).get("golden")
+    if golden:                      # golden-unit check (harness.golden), stored with the capture
+        from harness.golden import apply_golden
+
+        apply_golden(a, golden)
+    return a
+
+
+def phase_not_assessed(station: StationFacts, capture) -> str | None:
+    """Why the phase rules cannot be judged from this capture (None: they can).
+
+    With a reference channel the chain's latency cancels in the ratio. Without one the
+    response is divided by a chain calibration, whose phase includes the stream latency
+    of the session it was made in; the phase is the board's only when the latency was the
+    same: the calibration was made in the same stream session (capture metadata
+    ``stream_session`` equals ``calibration_stream_session``) or the backend states that
+    its latency is known (``latency_known``; a backend that does not say, such as the
+    simulated one with its fixed latency, counts as known). Gains are unaffected.
+    """
+    if station.reference_channel:
+        return None
+    md = getattr(capture, "metadata", None) or {}
+    if md.get("latency_known", True):
+        return None
+    session = md.get("stream_session")
+    if session and session == md.get("calibration_stream_session"):
+        return None
+    return ("phase not assessed: the station has no reference channel and the chain calibration was not made in "
+            "this stream session, so the stream latency (and with it the phase) may differ; gains are not "
+            "affected. Calibrate in the same session, use a reference input, or declare latency_known")
 
 
 def _est_dict(est) -> dict:
@@ -159,7 +203,7 @@ def _est_dict(est) -> dict:
 
 
 def _analyze_estimate(profile: Profile, est, station: StationFacts,
-                      calibration: ChainCalibration | None) -> Analysis:
+                      calibration: ChainCalibration | None, phase_note: str | None = None) -> Analysis:
     mask = profile.mask
     d = profile.decision
     f = np.asarray(est.freq_hz, dtype=float)
@@ -180,6 +224,8 @@ def _analyze_estimate(profile: Profile, est, station: StationFacts,
         h = h / c_h
 
     delay_s = float(getattr(est, "delay_s", 0.0) or 0.0)
+    if calibration is not None and not station.reference_channel:
+        delay_s -= calibration.delay_s()          # the chain's delay went out with the division
     u_delay = float(getattr(est, "u_delay_s", float("nan")))
     ref_i = _reference_index(mask, f)
 
@@ -233,7 +279,10 @@ def _analyze_estimate(profile: Profile, est, station: StationFacts,
     verdicts = list(pd.verdict)
 
     phase_check = None
-    if mask.phase.active:
+    if mask.phase.active and phase_note:
+        phase_check = {"rule": mask.phase.rule, "description": mask.phase.describe(), "assessed": False,
+                       "verdict": "not assessed", "verdicts": [], "reason": "", "note": phase_note}
+    elif mask.phase.active:
         phase_check = _phase_decision(profile, f, h, delay_s, p_budget, valid)
         verdicts += phase_check["verdicts"]
 
@@ -254,6 +303,8 @@ def _analyze_estimate(profile: Profile, est, station: StationFacts,
         reasons.append(phase_check["reason"])
     if verdict == "pass" and not reasons:
         reasons.append("every point meets the mask under the stated decision rule")
+    if phase_check and phase_check.get("note"):
+        reasons.append(phase_check["note"])
 
     bands = []
     for i, b in enumerate(mask.bands):

@@ -95,6 +95,9 @@ def _register_core(sub) -> None:
     run.add_argument("--serial", required=True, help="serial number of the unit")
     run.add_argument("--out", default=None,
                      help="folder for certificates (default: the station's output_dir, else ./harness-out)")
+    run.add_argument("--golden", default=None, metavar="FILE",
+                     help="golden-unit file: compare this unit (the golden unit) with its stored response; "
+                          "a station that is not verified gives exit 4")
     run.set_defaults(func=_cmd_run)
 
     demo = sub.add_parser("demo", help="calibrate the built-in simulated station and measure a small lot",

@@ -254,7 +254,7 @@ def run_from_files(profile_path, station_path, serial: str, *, out_dir=None, gol
     if golden is not None:
         from harness.golden import load_golden
 
-        golden = load_golden(golden, profile=profile)
+        golden = load_golden(golden, profile=profile, serial=serial)
     cal, cal_info = load_calibration(station)
     from harness.control import prepare_board
 

@@ -569,3 +569,33 @@ def open_backend(station) -> AudioBackend:
         raise ConfigError(station.path, "station.audio", "missing table [station.audio] (an audio station needs it)")
     return AudioBackend(cfg, sample_rate_hz=station.sample_rate_hz, max_output_dbfs=station.max_output_dbfs,
                         reference_channel=station.reference_channel, station_id=station.id)
+
+
+def calibrate_in_session(station, backend: AudioBackend, *, write: bool = True):
+    """Chain calibration through a loopback in `backend`'s stream session.
+
+    Measured like ``harness calibrate`` (`harness.calibration.calibrate`) but the
+    returned calibration remembers the stream session, so a station without a reference
+    channel also judges phase rules on units measured afterwards with the same backend
+    (the stream latency is the same; `harness.analysis.phase_not_assessed`). Connect the
+    loopback before calling, the board after.
+
+    Returns
+    -------
+    doc : dict
+        The calibration document (also written to the station's calibration file when
+        `write` and the station names one).
+    calibration : harness.analysis.ChainCalibration
+    info : dict
+        For `harness.measure.measure_unit(calibration_info=...)`: id, dates, file and
+        ``stream_session``.
+    """
+    from harness.calibration import calibrate, parse_calibration, write_calibration
+
+    doc = calibrate(station, backend)
+    doc["stream_session"] = backend.session_id
+    path = write_calibration(station, doc) if write and station.calibration.file is not None else None
+    cal = parse_calibration(doc, str(path) if path else "calibration")
+    info = {"id": doc["id"], "created_utc": doc["created_utc"], "due_utc": doc["due_utc"],
+            "file": path.name if path else None, "stream_session": backend.session_id}
+    return doc, cal, info
