@@ -105,6 +105,8 @@ def parse_config(table, *, base_dir: Path, station_id: str, backend: str) -> Dat
 
 
 def _check_url(url: str, file: str | None, key: str | None):
+    """The parsed URL, checked: SQLite or PostgreSQL through psycopg (a plain
+    ``postgresql://`` URL gets the psycopg driver)."""
     from sqlalchemy.engine import make_url
     from sqlalchemy.exc import ArgumentError
 
@@ -115,9 +117,12 @@ def _check_url(url: str, file: str | None, key: str | None):
     if u.get_backend_name() not in ("sqlite", "postgresql"):
         raise ConfigError(file, key, f"unsupported database '{u.get_backend_name()}': use postgresql+psycopg://... "
                                      "or sqlite:///file")
-    if u.get_backend_name() == "postgresql" and u.get_driver_name() not in ("psycopg",):
-        raise ConfigError(file, key, f"PostgreSQL URLs must name the psycopg driver: postgresql+psycopg://... "
-                                     f"(got driver '{u.get_driver_name()}')")
+    if u.get_backend_name() == "postgresql":
+        if "+" not in u.drivername:
+            u = u.set(drivername="postgresql+psycopg")
+        elif u.get_driver_name() != "psycopg":
+            raise ConfigError(file, key, f"PostgreSQL URLs must name the psycopg driver: postgresql+psycopg://... "
+                                         f"(got driver '{u.get_driver_name()}')")
     return u
 
 
@@ -125,15 +130,13 @@ def database_url(config: DatabaseConfig | None, out_dir: str | Path, override: s
     """The URL of the store a line uses: `override` (``--db``; a URL or a SQLite file
     path), else the station's ``[database]`` url or file, else
     ``<out_dir>/harness-results.sqlite``. A ``password_env`` is filled in here."""
-    from sqlalchemy.engine import make_url
 
     if override:
         if "://" not in override:
             return "sqlite:///" + str(Path(override).resolve())
-        _check_url(override, None, "--db")
-        return override
+        return _check_url(override, None, "--db").render_as_string(hide_password=False)
     if config is not None and config.url:
-        u = make_url(config.url)
+        u = _check_url(config.url, config.source, "database.url")
         if config.password_env:
             pw = os.environ.get(config.password_env)
             if pw is None:
@@ -378,9 +381,9 @@ def attempt_from_result(result, *, attempt_no: int, started_utc: str, finished_u
         "decision_rule": (cert.get("decision") or {}).get("rule"),
         "confidence": _num((cert.get("decision") or {}).get("confidence")),
         "certificate_id": cert.get("id"),
-        "certificate_file": None if result.json_path is None else str(result.json_path),
+        "certificate_file": None if result.json_path is None else str(Path(result.json_path).resolve()),
         "certificate_sha256": cert_sha,
-        "raw_file": None if result.raw_path is None else str(result.raw_path),
+        "raw_file": None if result.raw_path is None else str(Path(result.raw_path).resolve()),
         "raw_sha256": (cert.get("raw") or {}).get("sha256"),
         "signature_fingerprint": sig.get("public_key_fingerprint"),
         "duplicate": 1 if duplicate else 0,
@@ -673,6 +676,7 @@ def open_store(url: str | Path, *, readonly: bool = False, migrate: bool = True)
     if "://" not in url:
         url = "sqlite:///" + str(Path(url).resolve())
     u = _check_url(url, None, "database URL")
+    url = u.render_as_string(hide_password=False)
     engine = _sqlite_engine(url, readonly) if u.get_backend_name() == "sqlite" else _pg_engine(url)
     store = Store(engine, url, readonly)
     try:
