@@ -255,6 +255,11 @@ def verify_signature(cert_bytes: bytes, public_key=None) -> SignatureCheck:
     sig = doc.get("signature")
     if not isinstance(sig, dict):
         return SignatureCheck(False, False, None, problems + ["signature: the certificate is not signed"])
+    # the block itself is not signed: it must be exactly what sign_certificate writes
+    if set(sig) != {"algorithm", "signed", "public_key", "public_key_fingerprint", "value"}:
+        problems.append(f"signature: unexpected keys {sorted(set(sig) ^ {'algorithm', 'signed', 'public_key', 'public_key_fingerprint', 'value'})}")
+    if sig.get("signed") != SIGNED_TEXT:
+        problems.append(f"signature.signed: {sig.get('signed')!r}, expected {SIGNED_TEXT!r}")
     if sig.get("algorithm") != ALGORITHM:
         return SignatureCheck(False, False, None, problems + [f"signature.algorithm: {sig.get('algorithm')!r}, "
                                                               f"expected {ALGORITHM!r}"])
