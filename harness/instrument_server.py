@@ -54,8 +54,9 @@ Digitizer: ``ACQuire:SRATe <Sa/s>``, ``ACQuire:POINts <n>``,
 ``TRIGger:SOURce EXTernal|IMMediate``, ``INITiate[:IMMediate]`` (arm; with IMMediate the
 capture starts at once, with the generator in sine mode the board has then been driven
 for ``--command-gap-s`` since the last frequency change), ``ABORt``,
-``FETCh:WAVeform? CH1|CH2`` (block). ``*OPC?`` on the digitizer answers when the
-acquisition has completed (it does not answer while armed and waiting for a trigger).
+``FETCh:WAVeform? CH1|CH2`` (block). An acquisition runs in the background (the
+instruments keep answering); ``*OPC?`` on the digitizer answers when it has completed (not
+while armed and waiting for a trigger, nor while acquiring).
 
 Binary blocks (IEEE 488.2 definite length): ``#<n><length><bytes>``, ``n`` one digit
 1..9 giving how many digits ``length`` has, ``length`` the exact byte count. Samples are
@@ -66,8 +67,8 @@ length that is not a multiple of 4 or samples outside -1..+1 give an error-queue
 
 Errors follow the SCPI numbering (IEEE 488.2 / SCPI-99 error codes, from memory): -102
 syntax error, -108 parameter not allowed, -109 missing parameter, -113 undefined header,
--160 block data error, -200 execution error, -221 settings conflict, -222 data out of
-range, -224 illegal parameter value, -230 data corrupt or stale, -350 queue overflow.
+-160 block data error, -200 execution error, -213 init ignored, -221 settings conflict,
+-222 data out of range, -224 illegal parameter value, -230 data corrupt or stale, -350 queue overflow.
 A query that fails puts an entry in the queue and sends no reply, as instruments do.
 
 Misbehaviour (to test a client's handling): ``--misbehave slow|garbage|error|drop``
@@ -200,7 +201,8 @@ def split_message(msg: bytes) -> list[bytes]:
         else:
             i += 1
     units.append(msg[start:])
-    return [u.strip() for u in units if u.strip()]
+    # leading blanks only: a block's last bytes may be whitespace values
+    return [u.lstrip() for u in units if u.strip()]
 
 
 def next_message(buf: bytearray) -> tuple[bytes | None, int]:
@@ -561,11 +563,13 @@ class Digitizer(_Instrument):
         self.srate: float | None = None
         self.points = 1000
         self.trig_source = "IMM"
-        self.armed = False
+        self.armed = False          # armed and waiting for a trigger, or acquiring
+        self.acquiring = False
         self.data: tuple[np.ndarray, np.ndarray] | None = None
 
     def abort(self) -> None:
-        self.armed = False
+        if not self.acquiring:
+            self.armed = False
 
     def _set_srate(self, a) -> None:
         v = _number(a)
@@ -607,6 +611,7 @@ class Bench:
         self.generator = Generator(self, f"{SIM_MANUFACTURER},HSG-2 arbitrary generator (simulated),SIM-G-{sid},{v}")
         self.digitizer = Digitizer(self, f"{SIM_MANUFACTURER},HSD-2 two-channel digitizer (simulated),SIM-D-{sid},{v}")
         self._boards: dict[float, SimulatedBoard] = {}
+        self._compute = threading.Lock()           # one acquisition simulated at a time
         imp = dataclasses.replace(settings.device.imperfections, clock_offset_ppm=float(settings.clock_ppm))
         self.device = dataclasses.replace(settings.device, imperfections=imp)
 
@@ -631,9 +636,9 @@ class Bench:
                                   f"({g.srate:g}) equal to the digitizer's ({d.srate:g}) (nominally)")
         return float(d.srate)
 
-    def _capture(self, played_volts: np.ndarray, skip: int, n: int, fs: float) -> None:
-        """Run the board on `played_volts` (generator samples, volts) and store ``n``
-        digitizer samples from index `skip` on."""
+    def _capture(self, played_volts: np.ndarray, skip: int, n: int, fs: float) -> tuple[np.ndarray, np.ndarray]:
+        """Run the board on `played_volts` (generator samples, volts); return ``n``
+        digitizer samples (volts) of both channels from index `skip` on."""
         s = self.settings
         x = np.asarray(played_volts, dtype=float) / s.full_scale_volts
         need = skip + n
@@ -644,26 +649,50 @@ class Bench:
             y = y + sigma * self.rng.standard_normal(y.size)
             r = r + sigma * self.rng.standard_normal(r.size)
         y, r = np.clip(y, -1.0, 1.0), np.clip(r, -1.0, 1.0)
-        self.digitizer.data = (y * s.full_scale_volts, r * s.full_scale_volts)
+        return y * s.full_scale_volts, r * s.full_scale_volts
+
+    def _acquire(self, played_volts: np.ndarray, skip: int, n: int, fs: float) -> None:
+        """Start an acquisition in the background, as an instrument acquires while it
+        keeps answering: the digitizer stays busy (``*OPC?`` does not answer, FETCh
+        has no data) until the simulation has produced the samples."""
+        d = self.digitizer
+        self.board(fs)                  # a rate the board cannot run at fails here, in the command
+        d.armed = True
+        d.data = None
+
+        def work():
+            try:
+                with self._compute:
+                    data = self._capture(played_volts, skip, n, fs)
+            except Exception as exc:   # pragma: no cover - a simulation bug becomes an error entry
+                data = None
+                with self.cond:
+                    d.push_error(-200, f"Execution error; acquisition failed: {exc}"[:200])
+            with self.cond:
+                d.data = data
+                d.armed = False
+                self.cond.notify_all()
+
+        threading.Thread(target=work, daemon=True).start()
 
     def generator_triggered(self) -> None:
         g, d = self.generator, self.digitizer
         with self.cond:
-            if not (d.armed and d.trig_source == "EXT"):
+            if not (d.armed and d.trig_source == "EXT" and not d.acquiring):
                 return                       # the waveform plays; nobody records it
             fs = self._rates()
             w = g._arb()
             volts = (w * g.vpp / 2.0 + g.offset_v) if g.output else np.zeros(w.size)
-            try:
-                self._capture(volts, 0, d.points, fs)
-            finally:
-                d.armed = False
-                self.cond.notify_all()
+            d.acquiring = True
+            self._acquire(volts, 0, d.points, fs)
 
     def digitizer_init(self) -> None:
         g, d = self.generator, self.digitizer
         with self.cond:
+            if d.armed:
+                raise ScpiError(-213, "Init ignored; an acquisition is in progress")
             d.data = None
+            d.acquiring = False
             if d.trig_source == "EXT":
                 d.armed = True
                 return
@@ -678,7 +707,8 @@ class Bench:
                 volts = g.vpp / 2.0 * np.sin(2.0 * np.pi * g.freq_hz * t / fs + g.sine_phase) + g.offset_v
             else:
                 volts = np.full(n, g.offset_v if g.output else 0.0)
-            self._capture(volts, gap, d.points, fs)
+            d.acquiring = True
+            self._acquire(volts, gap, d.points, fs)
 
 
 # ======================================================================================

@@ -578,7 +578,11 @@ class Instrument:
         cmd = self.commands["error"][0]
         entries = []
         for _ in range(MAX_ERROR_ENTRIES):
-            reply = self.query(cmd)
+            try:
+                reply = self.query(cmd)
+            except InstrumentError as exc:       # name the command the check was for
+                raise InstrumentError(self.role, self.resource, after,
+                                      f"{exc.reason} (checking the error queue after {after!r})") from None
             m = _ERR_RE.match(reply)
             if not m:
                 raise self.fail(cmd, f"garbled error-queue reply {reply[:60]!r} (expected <code>,\"<text>\") "
@@ -766,10 +770,13 @@ class VisaBackend:
         d: dict[str, Any] = {"backend": "visa", "visa_library": self.config.visa_library,
                              "command_map": self.config.commands.describe(),
                              "full_scale_volts": self.full_scale_volts, "stepped_sine": self.config.stepped_sine}
-        try:
-            self.open()
-        except InvalidMeasurement as exc:
-            d["error"] = exc.reason
+        if self._open_error is not None:
+            d["error"] = self._open_error            # not retried here (each try may cost a timeout)
+        else:
+            try:
+                self.open()
+            except InvalidMeasurement as exc:
+                d["error"] = exc.reason
         d["generator"] = self.generator.identity() if self.generator else {"resource": self.config.generator}
         d["digitizer"] = self.digitizer.identity() if self.digitizer else {"resource": self.config.digitizer}
         return d
