@@ -278,9 +278,9 @@ class SerialPortSource:
     interactive = True
 
     def __init__(self, port: str, baudrate: int = 9600, *, ask: Callable[[str], str] = input,
-                 out=sys.stderr, timeout_s: float = 0.2, serial_obj=None):
+                 out=None, timeout_s: float = 0.2, serial_obj=None):
         self.ask = ask
-        self.out = out
+        self.out = sys.stderr if out is None else out
         if serial_obj is not None:
             self.port = serial_obj
         else:
@@ -412,7 +412,9 @@ class LineUI:
     """What the operator sees (human text) and what a script reads (``--json``: one
     JSON object per line on `out`, the human text then goes to `err`)."""
 
-    def __init__(self, out=sys.stdout, err=sys.stderr, *, json_lines: bool = False, colour: bool | None = None):
+    def __init__(self, out=None, err=None, *, json_lines: bool = False, colour: bool | None = None):
+        out = sys.stdout if out is None else out
+        err = sys.stderr if err is None else err
         self.json_lines = json_lines
         self.human = err if json_lines else out
         self.out = out
@@ -637,7 +639,12 @@ def run_line(profile_path, station_path, *, source, ui: LineUI | None = None, ou
 
     # -- refuse to start on a station problem ------------------------------------
     cal, cal_info = load_calibration(station)            # missing/expired/foreign: exit 4
-    plan = plan_for_profile(profile, station.sample_rate_hz)
+    key = (profile.sha256, station.sample_rate_hz)
+    plan = _PLANS.get(key) if profile.sha256 else None
+    if plan is None:
+        plan = plan_for_profile(profile, station.sample_rate_hz)
+        if profile.sha256:
+            _PLANS[key] = plan
     import numpy as np
 
     from harness.backends.base import assert_level
@@ -704,8 +711,11 @@ def run_line(profile_path, station_path, *, source, ui: LineUI | None = None, ou
                 intr.state = "waiting"
                 try:
                     raw = source.next_serial("serial number> ")
-                except (EndOfSerials, KeyboardInterrupt):
-                    stopped = "no more serial numbers" if not intr.stop_requested else "stopped by the operator"
+                except EndOfSerials:
+                    stopped = "no more serial numbers"
+                    break
+                except KeyboardInterrupt:
+                    stopped = "stopped by the operator (Ctrl-C)"
                     break
                 finally:
                     intr.state = "critical"
@@ -769,6 +779,7 @@ def run_line(profile_path, station_path, *, source, ui: LineUI | None = None, ou
                                           "n_points": 0, "duplicate": int(duplicate), "started_utc": started,
                                           "finished_utc": st.utc_now()}, [])
                         _record(store, rec, out, ui)
+                        counts.add(serial, "abandoned")
                         store.log_event(session, "abandoned", serial, {"attempt_no": attempt_no})
                         ui.say(f"\n*** {serial}: attempt {attempt_no} ABANDONED (nothing judged); the line stops ***")
                         ui.emit("abandoned", serial=serial, attempt_no=attempt_no)
@@ -858,6 +869,9 @@ def run_line(profile_path, station_path, *, source, ui: LineUI | None = None, ou
 
 class _StopLine(Exception):
     pass
+
+
+_PLANS: dict = {}    # stimulus plans by (profile sha256, sample rate): one per process
 
 
 def _record(store, rec, out: Path, ui: LineUI) -> bool:
