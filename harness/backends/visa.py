@@ -742,10 +742,13 @@ class VisaBackend:
     def close(self) -> None:
         """Output off (best effort) and release both resources."""
         if self.generator is not None:
-            try:
-                self.generator.send("output_off")
-            except Exception:
-                pass
+            # output off, best effort and without waiting for replies: a generator that
+            # has just failed must not cost another timeout here
+            for t in self.generator.commands.get("output_off", []):
+                try:
+                    self.generator.write(t)
+                except Exception:
+                    break
         for inst in (self.generator, self.digitizer):
             if inst is not None:
                 inst.close()
