@@ -549,3 +549,39 @@ identity_pattern = '^(?P<manufacturer>[^,]+),(?P<model>.+)$'
     cert = json.loads(next(out.glob("*.json")).read_text())
     assert (cert["unit"]["model"], cert["unit"]["firmware"], cert["unit"]["mode"]) == ("KD-8", "1.0.3", "lowpass")
     assert cert["station"]["instruments"]["digitizer"]["model"] == "HSD-2 two-channel digitizer (simulated)"
+
+
+def test_write_to_an_instrument_that_stops_reading_times_out():
+    """An instrument that accepts the connection but stops reading: a large upload ends
+    with an error after timeout_s + bytes / transfer_bytes_per_s, never a hang."""
+    import socket
+    import threading
+
+    import pyvisa
+
+    from harness.backends.visa import Instrument, VisaConfig
+
+    srv = socket.socket()
+    srv.bind(("127.0.0.1", 0))
+    srv.listen(1)
+    held = []
+    threading.Thread(target=lambda: held.append(srv.accept()), daemon=True).start()
+    res = f"TCPIP::127.0.0.1::{srv.getsockname()[1]}::SOCKET"
+    cfg = VisaConfig(generator=res, digitizer="TCPIP::127.0.0.1::1::SOCKET",
+                     commands=load_command_map(FIX / "visa-commands-sim.toml"), timeout_s=0.5,
+                     transfer_bytes_per_s=2e7)
+    rm = pyvisa.ResourceManager("@py")
+    inst = Instrument("generator", res, cfg.commands.generator, cfg, rm)
+    inst.inst = rm.open_resource(res)
+    payload = b"DATA:ARB W,#8" + b"%08d" % 20_000_000 + bytes(20_000_000) + b"\n"   # beyond any socket buffer
+    t0 = time.monotonic()
+    try:
+        with pytest.raises(InstrumentError, match=r"did not accept the command within 1\.5 s"):
+            inst.write_raw(payload, "DATA:ARB W,<block>")
+    finally:
+        inst.close()
+        rm.close()
+        srv.close()
+        for c, _ in held:
+            c.close()
+    assert time.monotonic() - t0 < 4

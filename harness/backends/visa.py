@@ -81,6 +81,7 @@ import math
 import re
 import socket
 import string
+import threading
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -445,10 +446,13 @@ class Instrument:
         except Exception as exc:   # pyvisa-py raises plain exceptions for unreachable hosts
             raise self.fail(None, f"cannot open the resource ({exc})") from None
         self._no_delay()
-        try:
-            self.inst.clear()
-        except Exception:
-            pass    # not every interface supports device clear; the reset below still runs
+        if self._socket() is not None:
+            self._drain()                   # stale bytes from an earlier session
+        else:
+            try:
+                self.inst.clear()           # device clear (USBTMC, GPIB, VXI-11)
+            except Exception:
+                pass    # not every interface supports it; the reset below still runs
         reset = self.commands.get("reset", [])
         for c in reset:
             self.write(c)
@@ -523,22 +527,77 @@ class Instrument:
             raise self.fail(command, "not connected")
 
     # -- primitives --------------------------------------------------------------------
+    def _deadline(self, seconds: float):
+        """A watchdog for writes on a raw socket: pyvisa-py waits for the socket to accept
+        data without any timeout, so an instrument that stops reading would block a write
+        for ever. After `seconds` the socket is shut down, which ends the wait with an
+        error. Returns the timer (cancel it) or None (other sessions time out in VISA)."""
+        sock = self._socket()
+        if sock is None:
+            return None
+
+        def fire():
+            self._write_expired = True
+            try:
+                sock.shutdown(socket.SHUT_RDWR)
+            except OSError:
+                pass
+
+        self._write_expired = False
+        timer = threading.Timer(seconds, fire)
+        timer.daemon = True
+        timer.start()
+        return timer
+
+    def _write(self, fn, data, command: str) -> None:
+        self._need_open(command)
+        limit = self.config.timeout_s + len(data) / self.config.transfer_bytes_per_s
+        timer = self._deadline(limit)
+        try:
+            self.inst.timeout = self.config.timeout_s * 1000.0
+            fn(data)
+        except Exception as exc:
+            if getattr(self, "_write_expired", False):
+                raise self.fail(command, f"the instrument did not accept the command within {limit:.3g} s "
+                                         "(write timeout; connection closed)") from None
+            raise self._io_error(command, exc, self.config.timeout_s) from None
+        finally:
+            if timer is not None:
+                timer.cancel()
+
     def write(self, command: str) -> None:
         """Send one command (the write termination is added)."""
-        self._need_open(command)
-        try:
-            self.inst.timeout = self.config.timeout_s * 1000.0
-            self.inst.write(command)
-        except Exception as exc:
-            raise self._io_error(command, exc, self.config.timeout_s) from None
+        self._write(lambda d: self.inst.write(d), command, command)
 
     def write_raw(self, data: bytes, command: str) -> None:
-        self._need_open(command)
+        """Send bytes as they are (a command with a binary block and its terminator)."""
+        self._write(lambda d: self.inst.write_raw(d), data, command)
+
+    def _drain(self, seconds: float = 0.2) -> bytes:
+        """Drop what a raw socket holds right now (a stale reply), for at most
+        `seconds`, without waiting for more. pyvisa-py's device clear drains until the
+        line has been quiet for 0.1 s, which never ends with an instrument that keeps
+        talking."""
+        sock = self._socket()
+        got = bytearray()
+        if sock is None:
+            return bytes(got)
+        t_end = time.monotonic() + seconds
+        while time.monotonic() < t_end and len(got) < 1 << 20:
+            try:
+                chunk = sock.recv(65536, socket.MSG_DONTWAIT)
+            except (BlockingIOError, InterruptedError):
+                break                           # nothing more waiting
+            except OSError:
+                break
+            if not chunk:
+                break
+            got.extend(chunk)
         try:
-            self.inst.timeout = self.config.timeout_s * 1000.0
-            self.inst.write_raw(data)
-        except Exception as exc:
-            raise self._io_error(command, exc, self.config.timeout_s) from None
+            self.inst.visalib.sessions[self.inst.session]._pending_buffer.clear()
+        except Exception:
+            pass
+        return bytes(got)
 
     def query(self, command: str, timeout_s: float | None = None) -> str:
         """Send a query and return its text reply, checked: it must arrive within the
@@ -627,7 +686,7 @@ class Instrument:
             head = inst.read_bytes(2)
             if head[:1] != b"#" or not head[1:2].isdigit() or head[1:2] == b"0":
                 raise self.fail(command, f"garbled reply: expected a definite-length block '#<n><length>', got "
-                                         f"{_show(head + self._drain())}")
+                                         f"{_show(head + self._peek_rest())}")
             nd = int(head[1:2])
             digits = inst.read_bytes(nd)
             if not digits.isdigit():
@@ -655,7 +714,8 @@ class Instrument:
             raise self.fail(command, f"{len(data)} bytes received, the block header said {n_bytes}")
         return data
 
-    def _drain(self) -> bytes:
+    def _peek_rest(self) -> bytes:
+        """Up to 64 more bytes of a garbled reply, for the message (0.1 s at most)."""
         try:
             self.inst.timeout = 100.0
             return bytes(self.inst.read_bytes(64, break_on_termchar=True))
