@@ -27,6 +27,8 @@ from harness.measure import run_from_files
 from harness.profile import load_profile
 from harness.station import load_station
 
+pytest_plugins = ["pytester"]
+
 ROOT = Path(__file__).resolve().parent.parent
 FIX = ROOT / "fixtures"
 NOTCH = FIX / "dut-notch50-nominal.toml"     # KN-50, firmware 2.1.0, id KN50-NOMINAL
@@ -332,3 +334,34 @@ def test_profile_mode_without_board_control(tmp_path):
     hw = dataclasses.replace(sim, backend="visa")
     with pytest.raises(InvalidMeasurement, match=r"requires board settings .* has no \[station.control\]"):
         prepare_board(hw, profile, "A")
+
+
+def test_processes_are_stopped_when_a_test_fails(pytester):
+    """The firmware fixture stops its process even when the test using it fails (the
+    instrument servers' fixture in test_visa.py is built the same way)."""
+    pidfile = pytester.path / "pid"
+    pytester.makepyfile(test_inner=f"""
+import sys
+sys.path.insert(0, {str(Path(__file__).parent)!r})
+from test_control import firmware   # the fixture under test
+
+def test_fails(firmware):
+    import os, pathlib
+    port = firmware()
+    assert os.path.exists(port)
+    def parent(p):
+        try:
+            return int(open(f"/proc/{{p}}/stat").read().rsplit(")", 1)[1].split()[1])
+        except (OSError, ValueError, IndexError):
+            return -1
+    pids = [p for p in os.listdir("/proc") if p.isdigit() and parent(p) == os.getpid()]
+    pathlib.Path({str(pidfile)!r}).write_text(" ".join(pids))
+    assert False, "a failing test"
+""")
+    result = pytester.runpytest("-p", "no:cacheprovider")
+    result.assert_outcomes(failed=1)
+    pids = [int(p) for p in pidfile.read_text().split()]
+    assert pids
+    for pid in pids:
+        alive = Path(f"/proc/{pid}").exists() and "Z" not in Path(f"/proc/{pid}/stat").read_text().split()[2]
+        assert not alive, f"firmware process {pid} still running after the failed test"
