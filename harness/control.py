@@ -49,7 +49,7 @@ from pathlib import Path
 from typing import Any
 
 from harness.config import Table, load_toml, sha256_hex
-from harness.errors import ConfigError, InvalidMeasurement
+from harness.errors import InvalidMeasurement
 
 MAX_LINE_BYTES = 256
 _CONTROL_KEYS = ("port", "baud", "timeout_s", "line_ending", "check_serial", "commands")

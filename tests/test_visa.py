@@ -30,7 +30,6 @@ import pytest
 from harness.backends.simulated import SimulatedBoard
 from harness.backends.visa import (
     InstrumentError,
-    VisaBackend,
     fill,
     load_command_map,
     parse_command_map,
