@@ -608,13 +608,29 @@ def _absent(name: str, detail: str) -> InvalidMeasurement:
                               "not connected")
 
 
-def _xcorr(x: np.ndarray, s: np.ndarray, lo: int, hi: int) -> np.ndarray:
-    """``c[l - lo] = sum_n s[n] x[n + l]`` for ``lo <= l <= hi`` (``x`` taken as zero
-    outside its samples), by `scipy.signal.fftconvolve` over chunks of `s`, so long
-    stimuli need memory of the order of the chunk, not of the whole signal."""
+def _xcorr(x: np.ndarray, s: np.ndarray, lo: int, hi: int, reps: int = 1) -> np.ndarray:
+    """``c[l - lo] = sum_n S[n] x[n + l]`` for ``lo <= l <= hi`` (``x`` taken as zero
+    outside its samples), where ``S`` is `s` repeated `reps` times end to end (a
+    periodic stimulus passes one period and its count).
+
+    With ``reps == 1``, by `scipy.signal.fftconvolve` over chunks of `s`, so long
+    stimuli need memory of the order of the chunk, not of the whole signal. With
+    ``reps > 1`` the capture is first folded onto one period plus the lag span,
+    ``F[j] = sum_i x[lo + i N + j]`` (``N = len(s)``), since
+    ``c[l - lo] = sum_m s[m] F[m + l - lo]``: one correlation of about ``N`` samples
+    instead of ``reps`` of them (the same sums, in another order)."""
     n_lags = hi - lo + 1
     if n_lags <= 0:
         return np.zeros(0)
+    if reps > 1:
+        n = s.size
+        fold = np.zeros(n + n_lags - 1)
+        for i in range(reps):
+            a0 = lo + i * n                             # x[a0 + j] adds to fold[j]
+            a, b = max(a0, 0), min(a0 + fold.size, x.size)
+            if b > a:
+                fold[a - a0:b - a0] += x[a:b]
+        return scipy.signal.fftconvolve(fold, s[::-1], mode="valid")
     pad_lo = max(0, -lo)
     pad_hi = max(0, hi + s.size - x.size)
     if pad_lo or pad_hi:
@@ -629,26 +645,29 @@ def _xcorr(x: np.ndarray, s: np.ndarray, lo: int, hi: int) -> np.ndarray:
     return out
 
 
-def _onset(x: np.ndarray, s: np.ndarray, lo: int = 0, hi: int | None = None) -> int:
-    """Lag (samples) at which the played signal `s` starts in `x`: the largest
-    ``|sum_n x[n + lag] s[n]|`` over ``lo <= lag <= hi`` (cross-correlation with the known
-    stimulus, `_xcorr`; the absolute value so an inverting device is found too)."""
-    hi = x.size - s.size if hi is None else min(hi, x.size - s.size)
+def _onset(x: np.ndarray, s: np.ndarray, lo: int = 0, hi: int | None = None, reps: int = 1) -> int:
+    """Lag (samples) at which the played signal (`s`, repeated `reps` times) starts in
+    `x`: the largest ``|sum_n x[n + lag] s[n]|`` over ``lo <= lag <= hi``
+    (cross-correlation with the known stimulus, `_xcorr`; the absolute value so an
+    inverting device is found too)."""
+    hi = x.size - s.size * reps if hi is None else min(hi, x.size - s.size * reps)
     lo = max(0, lo)
     if hi < lo:
         return lo
-    return lo + int(np.argmax(np.abs(_xcorr(x, s, lo, hi))))
+    return lo + int(np.argmax(np.abs(_xcorr(x, s, lo, hi, reps))))
 
 
-def _start(x: np.ndarray, s: np.ndarray) -> tuple[int, int | None]:
-    """Start of the stimulus in the capture (`_onset` over every lag at which the whole
-    stimulus fits), and a later start when the stimulus correlates clearly better
-    (by 5 %) with the capture continued by zeros, i.e. when its end looks cut off;
-    None otherwise. See `_check_not_cut`. Lags up to the larger of 8192 and twice the
-    extra samples (at most a quarter of the stimulus) past the last fit are tried."""
-    adm = x.size - s.size
-    ext = min(s.size // 4, max(8192, 2 * adm))
-    corr = np.abs(_xcorr(x, s, 0, adm + ext))
+def _start(x: np.ndarray, s: np.ndarray, reps: int = 1) -> tuple[int, int | None]:
+    """Start of the stimulus (`s` repeated `reps` times) in the capture (`_onset` over
+    every lag at which the whole stimulus fits), and a later start when the stimulus
+    correlates clearly better (by 5 %) with the capture continued by zeros, i.e. when
+    its end looks cut off; None otherwise. See `_check_not_cut`. Lags up to the larger
+    of 8192 and twice the extra samples (at most a quarter of the stimulus) past the
+    last fit are tried."""
+    n_sig = s.size * reps
+    adm = x.size - n_sig
+    ext = min(n_sig // 4, max(8192, 2 * adm))
+    corr = np.abs(_xcorr(x, s, 0, adm + ext, reps))
     lag = int(np.argmax(corr[:adm + 1]))
     late = int(np.argmax(corr))
     if late > adm and corr[late] > 1.05 * corr[lag]:
@@ -959,12 +978,13 @@ def estimate_multitone(plan, capture, *, min_snr_db: float = DEFAULT_MIN_SNR_DB,
     k = bins.size
     if p < 2:
         raise InvalidMeasurement("a multitone measurement needs at least 2 measured periods for a Type A estimate")
-    s = plan.signal()
     period = plan.signal_period()
+    reps = t_per + p                                   # signal() is `reps` periods
+    n_sig = n * reps
     s_spec = np.fft.rfft(period)
     y, r = _channels(plan, capture)
     _check_metadata(capture)
-    _check_length(y.size, s.size)
+    _check_length(y.size, n_sig)
     _check_clipping(r, "reference", clip_dbfs)
     _check_clipping(y, "response", clip_dbfs)
     _check_silent(r, "reference")
@@ -974,7 +994,7 @@ def estimate_multitone(plan, capture, *, min_snr_db: float = DEFAULT_MIN_SNR_DB,
 
     a = r if r is not None else y
     align = "reference" if r is not None else "response"
-    lag0, late = _start(a, s)
+    lag0, late = _start(a, period, reps)
     first = lag0 + t_per * n
     presence = {}
     if r is not None:
@@ -986,7 +1006,7 @@ def estimate_multitone(plan, capture, *, min_snr_db: float = DEFAULT_MIN_SNR_DB,
     eps_c, disp = _period_displacements(a, lag0, plan, max_clock_ppm, align)
     if r is not None:
         _period_displacements(y, lag0, plan, max_clock_ppm, "response")
-    _check_not_cut(late, a.size, s.size)
+    _check_not_cut(late, a.size, n_sig)
     details["coarse_clock_ppm"] = eps_c * 1e6
     details["period_displacements"] = [float(v) for v in disp]
     nb_all = np.asarray(plan.noise_bins, dtype=np.int64)
@@ -1032,8 +1052,8 @@ def estimate_multitone(plan, capture, *, min_snr_db: float = DEFAULT_MIN_SNR_DB,
         r = None if r is None else resample_by_ratio(r, alpha)
         a = r if r is not None else y
         guess = int(round(lag0 / alpha))
-        half = int(math.ceil(max_clock_ppm * 1e-6 * s.size)) + 8
-        lag = _onset(a, s, guess - half, guess + half)
+        half = int(math.ceil(max_clock_ppm * 1e-6 * n_sig)) + 8
+        lag = _onset(a, period, guess - half, guess + half, reps)
         notes.append(f"clock offset {eps * 1e6:+.3f} ppm corrected by resampling the capture onto the playback "
                      "clock (exact band-limited interpolation, chirp-z transform)")
     else:
@@ -1130,7 +1150,7 @@ def estimate_multitone(plan, capture, *, min_snr_db: float = DEFAULT_MIN_SNR_DB,
     # integer part: the correlation lag of the response (relative to the reference's
     # when there is one); the phase slope refines it
     if r is not None:
-        base = _onset(y, s, lag - n // 2, lag + n // 2) - lag
+        base = _onset(y, period, lag - n // 2, lag + n // 2, reps) - lag
     else:
         base = lag
     good = valid & (np.radians(up) < 0.1)
