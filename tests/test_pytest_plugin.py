@@ -340,7 +340,9 @@ def test_markers_skip_with_a_clear_reason(pytester):
 
 def test_real_station_measures_the_bench_unit_not_the_board(pytester):
     # The same test on a bench: the board argument is the simulation stand-in only; the
-    # audio backend is not in this version, which must be a clear failure.
+    # station names the audio backend with no [station.audio] table, so opening the
+    # bench unit fails (no audio device is chosen), which must be a clear failure that
+    # comes from the audio station, not a measurement of the simulated board.
     lp_project(pytester, MEASURE_TESTS, **{"audio.toml": """
         [station]
         id = "bench-9"
@@ -352,7 +354,7 @@ def test_real_station_measures_the_bench_unit_not_the_board(pytester):
     res.assert_outcomes(failed=2)
     out = res.stdout.str()
     assert "harness: cannot measure against profile acme-lp1k: " in out
-    assert "station.backend: the 'audio' backend is not available" in out
+    assert "audio.toml: station.audio" in out
     assert "Traceback" not in out
 
 
