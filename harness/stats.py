@@ -207,15 +207,17 @@ def _clean(v):
 # --------------------------------------------------------------------------------------
 @dataclass
 class Unit:
-    """A serial number against one profile, with its attempts (oldest first)."""
+    """A serial number against one profile, with its attempts (oldest first);
+    ``judged`` leaves out abandoned attempts."""
 
     serial: str
     profile: str
     attempts: list
+    judged: list = field(default_factory=list)
 
-    @property
-    def judged(self) -> list:
-        return [a for a in self.attempts if a["verdict"] in JUDGED]
+    def __post_init__(self):
+        if not self.judged:
+            self.judged = [a for a in self.attempts if a["verdict"] in JUDGED]
 
     @property
     def first(self) -> dict:
@@ -299,47 +301,114 @@ class ProfileCapability:
     series: dict            # frequency -> (gains in time order, times, serials)
 
 
-def capability_tables(store, units: list[Unit], filters: dict) -> list[ProfileCapability]:
+def _first_valid_attempts(store, filters: dict):
+    """SQL (SQLAlchemy Core CTE): each unit's first valid attempt (pass, fail or
+    inconclusive) among the attempts matching `filters`, with the previous such attempt
+    of the same profile in time order (``prev_id``, for moving ranges) and the profile's
+    first one (``ref_id``, whose gains shift the sums of squares)."""
+    from sqlalchemy import func, select
+
+    from harness.store import _filtered
+
+    a = store.tables["attempts"]
+    rev = func.coalesce(a.c.profile_revision, "")
+    ranked = select(a.c.id, a.c.serial, a.c.profile_id, rev.label("rev"), a.c.finished_utc,
+                    func.row_number().over(partition_by=(a.c.serial, a.c.profile_id, rev),
+                                           order_by=(a.c.finished_utc, a.c.id)).label("rn")
+                    ).where(a.c.verdict.in_(("pass", "fail", "inconclusive")))
+    ranked = _filtered(ranked, a, **filters).cte("ranked")
+    f0 = select(ranked.c.id, ranked.c.serial, ranked.c.profile_id, ranked.c.rev,
+                ranked.c.finished_utc).where(ranked.c.rn == 1).cte("firsts0")
+    win = {"partition_by": (f0.c.profile_id, f0.c.rev), "order_by": (f0.c.finished_utc, f0.c.id)}
+    return select(f0, func.lag(f0.c.id).over(**win).label("prev_id"),
+                  func.first_value(f0.c.id).over(**win).label("ref_id")).cte("firsts")
+
+
+def capability_tables(store, units: list[Unit], filters: dict, *, series_count: int = 6,
+                      frequency_hz: float | None = None) -> list[ProfileCapability]:
     """Per profile: the capability of every frequency point over each unit's first
-    valid attempt (time order)."""
-    chosen = {}
+    valid attempt (pass, fail or inconclusive), in time order.
+
+    Everything is summed inside the database in one pass (SQLite >= 3.25 and PostgreSQL
+    have the window functions it needs), so 100,000 units are summarised without moving
+    millions of rows to Python: count, the sums of ``g - c`` and ``(g - c)**2`` with
+    ``c`` the gain of the profile's first unit at that point (a shift that keeps the
+    variance accurate; unshifted sums are the fallback when a point has no such
+    reference), and the sum of moving ranges ``|g - g_previous unit|``. The values
+    themselves are fetched only for the `series_count` points with the lowest Cpk and
+    for `frequency_hz` (histograms and the control chart).
+    """
+    from sqlalchemy import and_, case, func, select
+
+    firsts = _first_valid_attempts(store, filters)
+    p = store.tables["points"]
+    q, r = p.alias("q"), p.alias("r")
+    d = p.c.gain_db - r.c.gain_db
+    query = (select(firsts.c.profile_id, firsts.c.rev, p.c.frequency_hz, func.count(), func.sum(d), func.sum(d * d),
+                    func.count(r.c.gain_db), func.sum(p.c.gain_db), func.sum(p.c.gain_db * p.c.gain_db),
+                    func.min(r.c.gain_db), func.max(r.c.gain_db),
+                    func.sum(func.abs(p.c.gain_db - q.c.gain_db)), func.count(q.c.gain_db),
+                    func.min(p.c.limit_low_db), func.max(p.c.limit_high_db),
+                    func.sum(case((p.c.gain_db > p.c.limit_high_db, 1), else_=0))
+                    + func.sum(case((p.c.gain_db < p.c.limit_low_db, 1), else_=0)))
+             .select_from(firsts.join(p, p.c.attempt_id == firsts.c.id)
+                          .outerjoin(q, and_(q.c.attempt_id == firsts.c.prev_id, q.c.idx == p.c.idx,
+                                             q.c.frequency_hz == p.c.frequency_hz))
+                          .outerjoin(r, and_(r.c.attempt_id == firsts.c.ref_id, r.c.idx == p.c.idx,
+                                             r.c.frequency_hz == p.c.frequency_hz)))
+             .where(p.c.gain_db.is_not(None))
+             .group_by(firsts.c.profile_id, firsts.c.rev, p.c.frequency_hz)
+             .order_by(firsts.c.profile_id, firsts.c.rev, p.c.frequency_hz))
+    with store.engine.connect() as conn:
+        rows = conn.execute(query).all()
+    per_profile: dict[tuple, list[Capability]] = {}
+    for pid, rev, f, n, s1, s2, n_ref, raw1, raw2, c_lo, c_hi, mr_sum, mr_n, lo, hi, out in rows:
+        n = int(n)
+        if int(n_ref) == n and c_lo == c_hi:          # one shift for the whole group
+            c = float(c_lo)
+            mean = c + float(s1) / n
+            ss = float(s2) - float(s1) ** 2 / n
+        else:                                         # no common reference: unshifted sums
+            mean = float(raw1) / n
+            ss = float(raw2) - float(raw1) ** 2 / n
+        s = math.sqrt(max(ss, 0.0) / (n - 1)) if n >= 2 else math.nan
+        sw = (float(mr_sum) / int(mr_n)) / D2_N2 if mr_n else math.nan
+        lo = None if lo is None else float(lo)
+        hi = None if hi is None else float(hi)
+        per_profile.setdefault((pid, rev), []).append(
+            Capability(float(f), n, mean, s, sw, lo, hi, cpk(mean, sw, lo, hi), cpk(mean, s, lo, hi), int(out or 0)))
+    n_units: dict[str, int] = {}
     for u in units:
-        valid = [a for a in u.judged if a["verdict"] != "invalid"]
-        if valid:
-            chosen[valid[0]["id"]] = (u.profile, valid[0]["finished_utc"], u.serial)
-    if not chosen:
-        return []
-    rows = store.point_rows(**filters)
-    if not rows:
-        return []
-    arr = np.array([(r[0], r[2], np.nan if r[3] is None else r[3],
-                     np.nan if r[4] is None else r[4], np.nan if r[5] is None else r[5]) for r in rows],
-                   dtype=float)
-    ids = np.array(sorted(chosen), dtype=float)
-    arr = arr[np.isin(arr[:, 0], ids)]
-    # order by (profile, time) through each attempt's rank
-    order_keys = sorted(chosen, key=lambda i: (chosen[i][0], chosen[i][1], i))
-    rank = {aid: k for k, aid in enumerate(order_keys)}
-    ranks = np.array([rank[int(a)] for a in arr[:, 0]])
-    arr = arr[np.argsort(ranks, kind="stable")]
-    profiles = np.array([chosen[int(a)][0] for a in arr[:, 0]], dtype=object)
-    out = []
-    for prof in sorted(set(profiles.tolist())):
-        sub = arr[profiles == prof]
-        fkey = np.round(sub[:, 1], 6)
-        caps, series = [], {}
-        for f in np.unique(fkey):
-            m = fkey == f
-            s = sub[m]
-            lsl = s[0, 3] if np.isfinite(s[0, 3]) else None
-            usl = s[0, 4] if np.isfinite(s[0, 4]) else None
-            caps.append(capability(float(f), s[:, 2], None if lsl is None else float(lsl),
-                                   None if usl is None else float(usl)))
-            series[float(f)] = ([float(v) for v in s[:, 2]],
-                                [chosen[int(a)][1] for a in s[:, 0]], [chosen[int(a)][2] for a in s[:, 0]])
-        n_units = len({int(a) for a in sub[:, 0]})
-        out.append(ProfileCapability(prof, n_units, caps, series))
-    return out
+        if any(a["verdict"] in ("pass", "fail", "inconclusive") for a in u.judged):
+            n_units[u.profile] = n_units.get(u.profile, 0) + 1
+    out_list = []
+    for (pid, rev), caps in per_profile.items():
+        name = f"{pid} rev {rev or '-'}"
+        out_list.append(ProfileCapability(name, n_units.get(name, 0), caps, {}))
+    # the values of the few points that are plotted / charted
+    wanted = set()
+    for pc in out_list:
+        ranked = sorted([c for c in pc.points if c.cpk is not None and math.isfinite(c.cpk)], key=lambda c: c.cpk)
+        wanted |= {c.frequency_hz for c in ranked[:series_count]}
+        if frequency_hz is not None and pc.points:
+            fs = np.array([c.frequency_hz for c in pc.points])
+            wanted.add(float(fs[np.argmin(np.abs(fs - frequency_hz))]))
+    if wanted:
+        firsts = _first_valid_attempts(store, filters)
+        query = (select(firsts.c.profile_id, firsts.c.rev, p.c.frequency_hz, p.c.gain_db, firsts.c.finished_utc,
+                        firsts.c.serial)
+                 .select_from(firsts.join(p, p.c.attempt_id == firsts.c.id))
+                 .where(p.c.gain_db.is_not(None), p.c.frequency_hz.in_(sorted(wanted)))
+                 .order_by(firsts.c.finished_utc, firsts.c.id))
+        by_name = {pc.profile: pc for pc in out_list}
+        with store.engine.connect() as conn:
+            for pid, rev, f, g, t, serial in conn.execute(query):
+                pc = by_name[f"{pid} rev {rev or '-'}"]
+                ser = pc.series.setdefault(float(f), ([], [], []))
+                ser[0].append(float(g))
+                ser[1].append(t)
+                ser[2].append(serial)
+    return sorted(out_list, key=lambda pc: pc.profile)
 
 
 def worst_cpk(pc: ProfileCapability) -> Capability | None:
@@ -545,7 +614,8 @@ def plot_histograms(pc: ProfileCapability, path: Path, count: int = 6) -> Path:
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
 
-    judged = sorted([c for c in pc.points if c.cpk is not None and math.isfinite(c.cpk)], key=lambda c: c.cpk)[:count]
+    judged = sorted([c for c in pc.points if c.cpk is not None and math.isfinite(c.cpk) and c.frequency_hz in pc.series],
+                    key=lambda c: c.cpk)[:count]
     n = max(len(judged), 1)
     cols = min(3, n)
     rows = int(math.ceil(n / cols))
@@ -632,17 +702,17 @@ def compute(store, *, profile_id=None, lot=None, station_id=None, since_utc=None
     if by is not None and by not in GROUPINGS:
         raise ConfigError(None, "--by", f"unknown grouping {by!r}; expected one of: {', '.join(GROUPINGS)}")
     yields = yield_table(units, by) if units else []
-    caps = capability_tables(store, units, filters)
+    caps = capability_tables(store, units, filters, frequency_hz=frequency_hz) if units else []
     chart, chart_prof = None, None
     if caps:
         pc = caps[0] if len(caps) == 1 else max(caps, key=lambda p: p.units)
         if frequency_hz is not None:
-            keys = np.array(list(pc.series))
+            keys = np.array([c.frequency_hz for c in pc.points])
             f = float(keys[np.argmin(np.abs(keys - frequency_hz))])
         else:
             w = worst_cpk(pc)
             f = w.frequency_hz if w else None
-        if f is not None and len(pc.series[f][0]) >= 2:
+        if f is not None and f in pc.series and len(pc.series[f][0]) >= 2:
             g, t, s = pc.series[f]
             chart = control_chart(g, baseline=baseline, times=t, serials=s, frequency_hz=f)
             chart_prof = pc.profile

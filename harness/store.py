@@ -512,7 +512,9 @@ class Store:
                       since_utc=since_utc, until_utc=until_utc)
         q = q.order_by(a.c.finished_utc, a.c.id)
         with self.engine.connect() as conn:
-            return [dict(r._mapping) for r in conn.execute(q)]
+            res = conn.execute(q)
+            keys = list(res.keys())
+            return [dict(zip(keys, r)) for r in res]
 
     def points(self, attempt_id: int) -> list[dict]:
         from sqlalchemy import select
@@ -521,20 +523,6 @@ class Store:
         with self.engine.connect() as conn:
             return [dict(r._mapping) for r in conn.execute(select(p).where(p.c.attempt_id == attempt_id)
                                                            .order_by(p.c.idx))]
-
-    def point_rows(self, *, profile_id: str | None = None, lot: str | None = None, station_id: str | None = None,
-                   since_utc: str | None = None, until_utc: str | None = None) -> list[tuple]:
-        """``(attempt_id, idx, frequency_hz, gain_db, limit_low_db, limit_high_db)`` of the
-        points of the matching attempts (plain tuples: fast for large stores)."""
-        from sqlalchemy import select
-
-        a, p = self.tables["attempts"], self.tables["points"]
-        q = select(p.c.attempt_id, p.c.idx, p.c.frequency_hz, p.c.gain_db, p.c.limit_low_db,
-                   p.c.limit_high_db).select_from(p.join(a, a.c.id == p.c.attempt_id))
-        q = _filtered(q, a, profile_id=profile_id, lot=lot, station_id=station_id, since_utc=since_utc,
-                      until_utc=until_utc)
-        with self.engine.connect() as conn:
-            return conn.execute(q).all()
 
     def events(self, session_uuid: str | None = None) -> list[dict]:
         from sqlalchemy import select

@@ -98,3 +98,14 @@ def test_speed_figures_are_sane(smoke):
     assert r["estimate_peak_mb"] >= r["capture_mb"] / 2      # at least the spectra of one channel
     shares = [s["share"] for s in r["estimate_stages"]]
     assert shares and all(0 <= s <= 1.0 for s in shares) and sum(shares) <= 1.05
+
+
+def test_store_figures_are_sane(smoke):
+    r = smoke["benchmarks"]["store"]["results"]
+    sq = r["throughput"]["SQLite (WAL, synchronous=FULL)"]
+    assert sq["units"] == 10 and sq["points_per_unit"] == 100
+    assert sq["units_per_s"] == pytest.approx(sq["units"] / sq["seconds"]) and sq["units_per_s"] > 0
+    assert 0 < sq["median_unit_s"] <= sq["p95_unit_s"]
+    st = r["stats"]["SQLite"]
+    assert st["units"] == 300 and st["attempts"] >= 300 and st["points"] == 26 * st["attempts"]
+    assert st["tables_s"] > 0 and st["lowest_cpk"] is not None

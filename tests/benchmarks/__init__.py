@@ -19,8 +19,11 @@ Each module measures one thing and has a ``run(**settings) -> dict`` returning
 4. `h1` - accuracy against the textbook H1 = Pxy / Pxx (scipy.signal.csd / welch) on the
    same captures.
 5. `speed` - analysis time and peak memory for a 10 s two-channel 96 kS/s capture.
+6. `store` - results-store throughput (units of 100 points recorded per second, SQLite
+   and, when HARNESS_TEST_PG_URL names a server, PostgreSQL) and `harness stats` time
+   on 100,000 stored units.
 
 Every figure is computed in the run that prints it; nothing is stored or hard-coded.
 """
 
-MODULES = ("crb", "coverage", "duration", "h1", "speed")
+MODULES = ("crb", "coverage", "duration", "h1", "speed", "store")

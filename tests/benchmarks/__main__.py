@@ -28,6 +28,7 @@ SETTINGS = {
         "duration": {"noise_levels_dbfs": (-60.0, -35.0), "repeats": 3, "ss_cycles": (4, 16)},
         "h1": {"seeds": 20},
         "speed": {"repeats": 5},
+        "store": {"units": 500, "points": 100, "stats_units": 100_000},
     },
     "quick": {
         "crb": {"trials": 300, "mt_trials": 40},
@@ -35,6 +36,7 @@ SETTINGS = {
         "duration": {"noise_levels_dbfs": (-60.0,), "repeats": 1, "ss_cycles": (4,)},
         "h1": {"seeds": 3},
         "speed": {"repeats": 2},
+        "store": {"units": 100, "points": 100, "stats_units": 10_000},
     },
     "smoke": {
         "crb": {"trials": 200, "mt_trials": 15, "snrs_db": (60.0,)},
@@ -43,6 +45,7 @@ SETTINGS = {
                      "ss_min_tone_s": (0.002,), "period_samples": 36000},
         "h1": {"seeds": 1, "noise_levels_dbfs": (-60.0,)},
         "speed": {"repeats": 1, "periods": 2},
+        "store": {"units": 10, "points": 100, "stats_units": 300, "report": False},
     },
 }
 
