@@ -20,8 +20,9 @@ Retest policy (command line > station ``[line]`` > profile ``[line]`` > default)
 Station-only keys of ``[line]``: ``require_operator``, ``require_lot`` (default true),
 ``duplicates`` ("refuse" | "record"), ``plots`` ("not-pass" | "always" | "never"),
 ``serial_pattern`` (a regular expression every serial must match), ``golden`` (a
-golden-unit file checked before the line starts), ``stop_after_invalid`` (consecutive
-invalid attempts that stop the line, default 3), and ``[line.simulate]`` for simulated
+golden-unit file of `harness.golden`: the golden unit is measured and must verify the
+station before the first unit), ``stop_after_invalid`` (consecutive invalid attempts
+that stop the line, default 3), and ``[line.simulate]`` for simulated
 stations (the lot each serial's board is drawn from: ``seed``, ``out_of_tolerance``,
 ``contact_fault`` and any spread key of `harness.device.DEFAULT_SPREAD`).
 
@@ -497,29 +498,32 @@ def simulated_board_for(station, sim: SimulateConfig, serial: str, attempt_no: i
 # --------------------------------------------------------------------------------------
 # golden unit
 # --------------------------------------------------------------------------------------
-def golden_check(golden_path, *, profile, station, backend, out_dir) -> None:
-    """Check the station with its golden unit before the line starts; raises
-    InvalidMeasurement (exit 4) when the check fails.
+def golden_check(golden_path, *, profile, station, backend, out_dir, plan=None, calibration=None,
+                 calibration_info=None, store=None, ui=None, source=None) -> dict:
+    """Measure the station's golden unit and compare it with its stored response
+    (`harness.golden`); raises InvalidMeasurement (exit 4) when the station is not
+    verified, so the line does not start. The golden unit's certificate is written like
+    any other; the check is recorded in the store as an event (not as a unit: the golden
+    unit never counts in the yield). Returns the certificate's ``golden_check``."""
+    from harness.golden import load_golden
+    from harness.measure import measure_unit
 
-    Uses ``harness.golden.check_station(golden_path, profile=..., station=...,
-    backend=..., out_dir=...)``, which returns an object with ``ok`` (bool) and
-    ``reasons``; without that module a golden file is refused (ConfigError).
-    """
-    import importlib
-    import importlib.util
-
-    if importlib.util.find_spec("harness.golden") is None:
-        raise ConfigError(str(golden_path), None, "golden-unit checks need harness.golden, which this "
-                                                  "version of the harness does not have")
-    mod = importlib.import_module("harness.golden")
-    fn = getattr(mod, "check_station", None)
-    if fn is None:
-        raise ConfigError(str(golden_path), None, "harness.golden has no check_station(): cannot run the "
-                                                  "golden-unit check")
-    res = fn(golden_path, profile=profile, station=station, backend=backend, out_dir=out_dir)
-    if not getattr(res, "ok", False):
-        reasons = "; ".join(getattr(res, "reasons", []) or ["failed"])
-        raise InvalidMeasurement(f"golden-unit check failed, the line does not start: {reasons}")
+    g = load_golden(golden_path, profile=profile)
+    if source is not None and source.interactive:
+        source.confirm(f"  put the golden unit {g.serial} on the station, then Enter> ")
+    res = measure_unit(profile, station, g.serial, backend=backend, out_dir=out_dir, calibration=calibration,
+                       calibration_info=calibration_info, plan=plan, golden=g, write_plot="not-pass")
+    check = res.certificate.get("golden_check") or {"verdict": "not verified", "reason": "no golden check made"}
+    if store is not None:
+        store.log_event(None, "golden-check", g.serial,
+                        {"verdict": check.get("verdict"), "reason": check.get("reason"), "golden_file": str(golden_path),
+                         "certificate": str(res.json_path), "unit_verdict": res.verdict})
+    if check.get("verdict") != "verified":
+        raise InvalidMeasurement(f"golden-unit check failed, the line does not start: {check.get('reason')} "
+                                 f"(certificate {res.json_path})")
+    if ui is not None:
+        ui.say(f"  {check.get('reason')}")
+    return check
 
 
 # --------------------------------------------------------------------------------------
@@ -602,6 +606,7 @@ def run_line(profile_path, station_path, *, source, ui: LineUI | None = None, ou
     """
     from harness import store as st
     from harness.calibration import load_calibration
+    from harness.control import prepare_board
     from harness.measure import make_backend, measure_unit
     from harness.profile import load_profile
     from harness.signing import SigningConfig, fingerprint, load_private_key
@@ -692,8 +697,12 @@ def run_line(profile_path, station_path, *, source, ui: LineUI | None = None, ou
             if golden:
                 ui.say(f"  golden-unit check with {golden} ...")
                 gb = shared_backend if shared_backend is not None else make_backend(station)
-                golden_check(golden, profile=profile, station=station, backend=gb, out_dir=out)
-                ui.say("  golden-unit check passed")
+                try:
+                    golden_check(golden, profile=profile, station=station, backend=gb, out_dir=out, plan=plan,
+                                 calibration=cal, calibration_info=cal_info, store=store, ui=ui, source=source)
+                finally:
+                    if gb is not shared_backend:
+                        gb.close()
             session = store.start_session(station_id=station.id, station_file_sha256=station.sha256,
                                           profile=profile, lot=lot, work_order=work_order, operator=operator,
                                           mode="interactive" if source.interactive else "unattended")
@@ -748,6 +757,18 @@ def run_line(profile_path, station_path, *, source, ui: LineUI | None = None, ou
                 elif prior:
                     ui.say(f"  {serial}: retest of a unit with {done} earlier attempt(s) "
                            f"(last {prior[-1]['verdict'].upper()})")
+                try:
+                    board_facts = prepare_board(station, profile, serial)
+                except InvalidMeasurement as exc:          # board does not answer / wrong board
+                    ui.say(f"  !! {serial}: board control: {exc.reason}; not measured")
+                    store.log_event(session, "board-control", serial, {"reason": exc.reason})
+                    ui.emit("board-control", serial=serial, reason=exc.reason)
+                    consecutive_invalid += 1
+                    if consecutive_invalid >= cfg.stop_after_invalid:
+                        stopped = f"{consecutive_invalid} units in a row could not be prepared: check the fixture"
+                        exit_code = EXIT_INVALID
+                        raise _StopLine() from None
+                    continue
                 first_no = done + 1
                 max_attempts = max(first_no, 1 + policy.retests) if not duplicate else first_no
                 attempt_no = first_no
@@ -765,7 +786,8 @@ def run_line(profile_path, station_path, *, source, ui: LineUI | None = None, ou
                         except Exception:  # noqa: BLE001 - informative only
                             pass
                         result = measure_unit(profile, station, serial, backend=backend, out_dir=out,
-                                              unit={"model": ident.get("model"), "firmware": ident.get("firmware")},
+                                              unit={"model": ident.get("model"), "firmware": ident.get("firmware"),
+                                                    **board_facts},
                                               calibration=cal, calibration_info=cal_info, plan=plan, write_plot=plots)
                     except KeyboardInterrupt:
                         intr.state = "critical"

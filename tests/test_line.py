@@ -15,8 +15,6 @@ import io
 import json
 import os
 import signal
-import sys
-import types
 from pathlib import Path
 
 import numpy as np
@@ -304,35 +302,51 @@ def test_a_calibration_expiring_during_the_shift_stops_the_line(tmp_path, monkey
     assert [r["serial"] for r in rows] == ["KF8-E1", "KF8-E2"] and rows[0]["calibration_id"] == "cal-x"
 
 
-def test_golden_unit_check_gates_the_start(tmp_path, monkeypatch):
-    golden = tmp_path / "golden.json"
-    golden.write_text("{}")
-    if "harness.golden" not in sys.modules:
-        import importlib.util
+def test_golden_unit_check_gates_the_start(tmp_path):
+    """The golden unit (the station's nominal KF-8 board) is measured before the first
+    unit and compared with its stored response (harness.golden): a stored response 0.4 dB
+    off at one point (beyond the 0.05 dB tolerance) keeps the line from starting."""
+    from harness.golden import golden_from_certificate, write_golden
+    from harness.measure import make_backend, measure_unit
+    from harness.profile import load_profile
+    from harness.station import load_station
 
-        if importlib.util.find_spec("harness.golden") is None:
-            with pytest.raises(ConfigError, match="golden"):
-                run(tmp_path, ["KF8-G1"], golden=golden)
-    seen = {}
+    stn = station(tmp_path)
+    s, prof = load_station(stn), load_profile(PROFILE)
+    ref = measure_unit(prof, s, "KF8-GOLD-1", backend=make_backend(s), out_dir=tmp_path / "golden-ref",
+                       write_plot=False)
+    good = write_golden(golden_from_certificate(ref.json_path, tolerance_gain_db=0.05), tmp_path / "good.json")
+    doc = golden_from_certificate(ref.json_path, tolerance_gain_db=0.05)
+    doc["points"][4]["gain_db"] += 0.4
+    bad = write_golden(doc, tmp_path / "bad.json")
+    with pytest.raises(InvalidMeasurement, match=r"golden-unit check failed.*gain differs by -0\.4"):
+        run(tmp_path, ["KF8-G1"], stn, golden=bad)
+    with st.open_store(tmp_path / "out" / "harness-results.sqlite", readonly=True) as store:
+        assert store.counts()["attempts"] == 0 and store.counts()["sessions"] == 0
+        (ev,) = store.events()
+        assert ev["kind"] == "golden-check" and json.loads(ev["detail"])["verdict"] == "not verified"
+    res, ui = run(tmp_path, ["KF8-G1"], stn, golden=good)
+    assert res.counts.passed == 1 and "station verified" in ui.human.getvalue()
+    assert [r["serial"] for r in stored(tmp_path)] == ["KF8-G1"]       # the golden unit is no unit
 
-    def check_station(path, *, profile, station, backend, out_dir):
-        seen["path"] = Path(path)
-        return types.SimpleNamespace(ok=seen.get("ok", False), reasons=["gain at 1 kHz off by 0.4 dB"])
 
-    import importlib.machinery
+def test_a_board_that_cannot_be_prepared_is_not_measured_and_logged(tmp_path, monkeypatch):
+    import harness.control as hc
 
-    fake = types.ModuleType("harness.golden")           # stands in for the golden-unit module
-    fake.__spec__ = importlib.machinery.ModuleSpec("harness.golden", None)
-    fake.check_station = check_station
-    monkeypatch.setitem(sys.modules, "harness.golden", fake)
-    with pytest.raises(InvalidMeasurement, match="golden-unit check failed.*0.4 dB"):
-        run(tmp_path, ["KF8-G1"], golden=golden)
-    assert seen["path"] == golden
+    def prepare(station, profile, serial):
+        if serial == "KF8-W2":
+            raise hc.BoardControlError("loop://", "SN?", "board reports serial 'KF8-W9' but the unit was given "
+                                                         "as 'KF8-W2'; refused")
+        return {"board_serial": serial}
+
+    monkeypatch.setattr(hc, "prepare_board", prepare)
+    res, ui = run(tmp_path, ["KF8-W1", "KF8-W2", "KF8-W3"])
+    rows = stored(tmp_path)
+    assert [r["serial"] for r in rows] == ["KF8-W1", "KF8-W3"]
+    assert json.loads(Path(rows[0]["certificate_file"]).read_text())["unit"]["board_serial"] == "KF8-W1"
+    assert "board control" in ui.human.getvalue() and "KF8-W9" in ui.human.getvalue()
     with st.open_store(tmp_path / "out" / "harness-results.sqlite", readonly=True) as s:
-        assert s.counts()["attempts"] == 0 and s.counts()["sessions"] == 0
-    seen["ok"] = True
-    res, _ = run(tmp_path, ["KF8-G1"], golden=golden)
-    assert res.counts.passed == 1
+        assert [e["serial"] for e in s.events() if e["kind"] == "board-control"] == ["KF8-W2"]
 
 
 def test_repeated_invalid_measurements_stop_the_line(tmp_path):
