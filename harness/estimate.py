@@ -549,39 +549,61 @@ def _check_clipping(x: np.ndarray | None, name: str, clip_dbfs: float) -> None:
     if x is None or x.size == 0:
         return
     lim = 10.0 ** (clip_dbfs / 20.0)
-    peak = float(np.max(np.abs(x)))
+    hi, lo = float(np.max(x)), float(np.min(x))
+    peak = max(hi, -lo)                                # max |x| without a copy of |x|
     if peak >= lim:
         n = int(np.count_nonzero(np.abs(x) >= lim))
         raise InvalidMeasurement(f"clipping: the {name} channel reaches {_dbfs(peak):.2f} dBFS ({n} sample(s) at "
                                  f"or above {clip_dbfs:g} dBFS); lower the stimulus level or the gain")
-    runs, level = _flat_top_runs(x)
+    runs, level = _flat_top_runs(x, hi, lo)
     if runs >= 2:
         raise InvalidMeasurement(f"clipping: the {name} channel has {runs} flat tops at its extreme "
                                  f"({level:+.4f} FS, {_dbfs(abs(level)):.2f} dBFS): runs of equal samples entered "
                                  "by steep steps, the mark of a limiter or an overdriven stage before the converter")
 
 
-def _flat_top_runs(x: np.ndarray) -> tuple[int, float]:
-    """Count flat tops at the channel's maximum and minimum: runs of >= 3 equal samples
-    whose entering and leaving steps exceed 4 quantisation steps (a natural, quantised
-    peak is entered by steps of about one step). The quantisation step is estimated as
-    the smallest non-zero difference between consecutive samples."""
-    d = np.abs(np.diff(x))
-    nz = d[d > 0]
-    if nz.size == 0:
-        return 0, 0.0
-    q = float(np.min(nz))
+def _min_step(x: np.ndarray, chunk: int = 1 << 16) -> float:
+    """Smallest non-zero ``|x[n+1] - x[n]|`` (the quantisation step of a quantised
+    signal); 0.0 when `x` is constant. In chunks, so no full-length temporaries."""
+    q = np.inf
+    for j in range(0, max(x.size - 1, 0), chunk):
+        d = np.diff(x[j:j + chunk + 1])
+        np.abs(d, out=d)
+        d[d == 0] = np.inf
+        q = min(q, float(np.min(d)))
+    return q if np.isfinite(q) else 0.0
+
+
+def _runs(idx: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Runs of consecutive integers in the ascending `idx`: their starts and (exclusive)
+    stops."""
+    brk = np.flatnonzero(np.diff(idx) > 1)
+    return idx[np.concatenate([[0], brk + 1])], idx[np.concatenate([brk, [idx.size - 1]])] + 1
+
+
+def _flat_top_runs(x: np.ndarray, hi: float | None = None, lo: float | None = None) -> tuple[int, float]:
+    """Count flat tops at the channel's maximum and minimum (`hi`, `lo` when known):
+    runs of >= 3 equal samples whose entering and leaving steps exceed 4 quantisation
+    steps (a natural, quantised peak is entered by steps of about one step). The
+    quantisation step is estimated as the smallest non-zero difference between
+    consecutive samples (`_min_step`; only needed, and only computed, when the
+    maximum or minimum is held for 3 or more samples)."""
+    hi = float(np.max(x)) if hi is None else hi
+    lo = float(np.min(x)) if lo is None else lo
     worst = (0, 0.0)
-    for v in (float(np.max(x)), float(np.min(x))):
+    q = None
+    for v in (hi, lo):
         if v == 0.0:
             continue
-        at = x == v
-        if np.count_nonzero(at) < 3:
+        idx = np.flatnonzero(x == v)
+        if idx.size < 3:
             continue
-        edges = np.diff(np.concatenate([[0], at.astype(np.int8), [0]]))
-        starts, stops = np.flatnonzero(edges == 1), np.flatnonzero(edges == -1)
+        if q is None:
+            q = _min_step(x)
+            if q == 0.0:                                # constant signal: no steps at all
+                return 0, 0.0
         count = 0
-        for a, b in zip(starts, stops):
+        for a, b in zip(*_runs(idx)):
             if b - a < 3 or a == 0 or b >= x.size:
                 continue
             if abs(x[a - 1] - v) > 4 * q and abs(x[b] - v) > 4 * q:
@@ -800,9 +822,9 @@ def _check_bursts(x: np.ndarray, start: int, stop: int, period: int, name: str) 
     d = seg[period:] - seg[:-period]
     blen = max(16, period // 16)
     nb = d.size // blen
-    e = np.sqrt(np.mean(d[:nb * blen].reshape(nb, blen) ** 2, axis=1))
+    e = np.sqrt(np.mean(np.square(d[:nb * blen], out=d[:nb * blen]).reshape(nb, blen), axis=1))
     med = float(np.median(e))
-    sig = float(np.sqrt(np.mean(seg * seg)))
+    sig = math.sqrt(float(np.dot(seg, seg)) / seg.size)
     j = int(np.argmax(e))
     if e[j] > DROPOUT_BURST_RATIO * med and e[j] > 1e-3 * sig:
         raise InvalidMeasurement(
@@ -846,25 +868,27 @@ def _check_flat_tops(x: np.ndarray, sigma: float, name: str) -> None:
     for two or more such runs."""
     if x.size < 8:
         return
-    d = np.abs(np.diff(x))
-    nz = d[d > 0]
-    q = float(np.min(nz)) if nz.size else 0.0
+    hi, lo = float(np.max(x)), float(np.min(x))
+    # q enters only through max(5 sigma, q) and max(20 sigma, 4 q): when one non-zero
+    # step early in x (an upper bound of q) is already <= 5 sigma, q need not be found
+    d0 = np.abs(np.diff(x[:4097]))
+    d0 = d0[d0 > 0]
+    if d0.size and float(np.min(d0)) <= 5.0 * sigma:
+        q = 0.0
+    else:
+        q = _min_step(x)
     tol = max(5.0 * sigma, q)
-    step = max(20.0 * sigma, 4.0 * q, 1e-12 * float(np.max(np.abs(x))))
-    for sign in (1.0, -1.0):
-        v = sign * x
-        top = float(np.max(v))
+    step = max(20.0 * sigma, 4.0 * q, 1e-12 * max(hi, -lo))
+    for sign, top in ((1.0, hi), (-1.0, -lo)):
         if top <= 0:
             continue
-        at = v >= top - tol
-        edges = np.diff(np.concatenate([[0], at.astype(np.int8), [0]]))
-        starts, stops = np.flatnonzero(edges == 1), np.flatnonzero(edges == -1)
+        idx = np.flatnonzero(x >= top - tol) if sign > 0 else np.flatnonzero(x <= -(top - tol))
         runs = 0
-        for a0, b0 in zip(starts, stops):
-            if b0 - a0 < 3 or a0 == 0 or b0 >= v.size:
+        for a0, b0 in zip(*_runs(idx)):
+            if b0 - a0 < 3 or a0 == 0 or b0 >= x.size:
                 continue
-            level = float(np.median(v[a0:b0]))
-            if level - v[a0 - 1] > step and level - v[b0] > step:
+            level = float(np.median(sign * x[a0:b0]))
+            if level - sign * x[a0 - 1] > step and level - sign * x[b0] > step:
                 runs += 1
         if runs >= 2:
             raise InvalidMeasurement(
@@ -1021,12 +1045,16 @@ def estimate_multitone(plan, capture, *, min_snr_db: float = DEFAULT_MIN_SNR_DB,
     def per_period(x, lag):
         return np.fft.rfft(_windows(x, lag + t_per * n - guard, n, p), axis=1)
 
-    def tone_noise_var(spec):
+    def bin_stats(spec):
+        """Mean over the periods and period-to-period variance (ddof 1) of every bin
+        (computed once per spectrum; the checks below take the bins they need)."""
+        return spec.mean(axis=0), np.var(spec, axis=0, ddof=1)
+
+    def tone_noise_var(stats):
         """Per-period noise variance near each tone, from non-excited bins' scatter."""
         if neigh is None:
-            return np.var(spec[:, bins], axis=0, ddof=1)
-        v = np.var(spec[:, nb_use], axis=0, ddof=1)
-        return v[neigh].mean(axis=1)
+            return stats[1][bins]
+        return stats[1][nb_use][neigh].mean(axis=1)
 
     drift_cycles = abs(eps_c) * (n / 2) * (t_per + p)
     a1, lag1, alpha1 = a, lag0, 1.0
@@ -1034,8 +1062,11 @@ def estimate_multitone(plan, capture, *, min_snr_db: float = DEFAULT_MIN_SNR_DB,
         alpha1 = 1.0 + eps_c
         a1 = resample_by_ratio(a, alpha1)
         lag1 = int(round(lag0 / alpha1))
-    spec_a = per_period(a1, lag1) if lag1 + (t_per + p) * n <= a1.size else per_period(a, lag0)
-    d_eps, u_eps, used = _phase_drift(spec_a[:, bins], bins, tone_noise_var(spec_a))
+    if lag1 + (t_per + p) * n > a1.size:
+        a1, lag1 = a, lag0
+    spec_a = per_period(a1, lag1)
+    stats_a = bin_stats(spec_a)
+    d_eps, u_eps, used = _phase_drift(spec_a[:, bins], bins, tone_noise_var(stats_a))
     details["clock_tones_used"] = used
     if np.isfinite(u_eps):
         eps = alpha1 * (1.0 + d_eps) - 1.0
@@ -1075,11 +1106,16 @@ def estimate_multitone(plan, capture, *, min_snr_db: float = DEFAULT_MIN_SNR_DB,
     _check_silent_before(a, lag, n, align)
 
     # -- spectra, ratio, covariance ----------------------------------------------------
-    ys = per_period(y, lag)
+    # (the clock spectrum is reused when it came from the same channel and lag)
+    def spectrum(x):
+        return (spec_a, stats_a) if (x is a1 and lag == lag1) else (lambda sp: (sp, bin_stats(sp)))(
+            per_period(x, lag))
+
+    ys, stats_y = spectrum(y)
     yp = ys[:, bins]
     omega = 2.0 * np.pi * bins / n                     # rad/sample
     if r is not None:
-        us = per_period(r, lag)
+        us, stats_u = spectrum(r)
         g, cov, ym, um = _ratio_of_means(yp, us[:, bins], None)
         h, cov_h = g, cov
     else:
@@ -1103,15 +1139,15 @@ def estimate_multitone(plan, capture, *, min_snr_db: float = DEFAULT_MIN_SNR_DB,
     details["drifting_points"] = int(np.count_nonzero(allow))
 
     # -- flat tops within the noise (clipping before the converter) ---------------------
-    def white_sigma(spec):
-        v = np.var(spec[:, nb_use], axis=0, ddof=1) if nb_use.size else np.zeros(1)
+    def white_sigma(stats):
+        v = stats[1][nb_use] if nb_use.size else np.zeros(1)
         return math.sqrt(float(np.median(v)) / n)     # DFT of white noise: E|X|^2 = N sigma^2
-    _check_flat_tops(y[w0:w0 + p * n], white_sigma(ys), "response")
+    _check_flat_tops(y[w0:w0 + p * n], white_sigma(stats_y), "response")
     if r is not None:
-        _check_flat_tops(r[w0:w0 + p * n], white_sigma(us), "reference")
+        _check_flat_tops(r[w0:w0 + p * n], white_sigma(stats_u), "reference")
 
     # -- SNR, noise floor, validity ----------------------------------------------------
-    nv = tone_noise_var(ys)
+    nv = tone_noise_var(stats_y)
     with np.errstate(divide="ignore", invalid="ignore"):
         snr = _db10(np.abs(ym) ** 2 * p / nv)
         floor = _db10(nv / p / np.abs(um) ** 2)
@@ -1121,7 +1157,7 @@ def estimate_multitone(plan, capture, *, min_snr_db: float = DEFAULT_MIN_SNR_DB,
     for i in np.flatnonzero(snr < min_snr_db):
         reasons[i] = f"SNR {snr[i]:.1f} dB below the {min_snr_db:g} dB minimum (response near the noise floor)"
     if r is not None:
-        unv = tone_noise_var(us)
+        unv = tone_noise_var(stats_u)
         with np.errstate(divide="ignore", invalid="ignore"):
             snr_u = _db10(np.abs(um) ** 2 * p / unv)
         for i in np.flatnonzero(~(snr_u >= min_snr_db)):
@@ -1131,20 +1167,19 @@ def estimate_multitone(plan, capture, *, min_snr_db: float = DEFAULT_MIN_SNR_DB,
     ug, up = gain_phase_uncertainty(h, cov_h)
 
     # -- distortion: the non-excited lines ---------------------------------------------
-    def distortion(spec, lines):
+    def distortion(stats, lines):
         if lines.size == 0:
             return float("nan")
-        mean = spec[:, lines].mean(axis=0)
-        var = np.var(spec[:, lines], axis=0, ddof=1)
+        mean, var = stats[0][lines], stats[1][lines]
         dp = np.maximum(np.abs(mean) ** 2 - var / p, 0.0)
-        tp = float(np.sum(np.abs(spec[:, bins].mean(axis=0)) ** 2))
+        tp = float(np.sum(np.abs(stats[0][bins]) ** 2))
         return float(_db10(np.sum(dp) / tp)) if tp > 0 else float("nan")
 
-    dist = distortion(ys, nb_use)
-    details["distortion_even_db"] = distortion(ys, nb_use[nb_use % 2 == 0])
-    details["distortion_odd_db"] = distortion(ys, nb_use[nb_use % 2 == 1])
+    dist = distortion(stats_y, nb_use)
+    details["distortion_even_db"] = distortion(stats_y, nb_use[nb_use % 2 == 0])
+    details["distortion_odd_db"] = distortion(stats_y, nb_use[nb_use % 2 == 1])
     if r is not None:
-        details["reference_distortion_db"] = distortion(us, nb_use)
+        details["reference_distortion_db"] = distortion(stats_u, nb_use)
 
     # -- bulk delay --------------------------------------------------------------------
     # integer part: the correlation lag of the response (relative to the reference's
@@ -1166,8 +1201,10 @@ def estimate_multitone(plan, capture, *, min_snr_db: float = DEFAULT_MIN_SNR_DB,
     if r is None:
         notes.append("no reference channel: h is relative to the digital stimulus and includes the stream latency")
 
-    in_level = float(np.max(np.abs(r[w0:w0 + p * n]))) if r is not None else float(np.max(np.abs(period)))
-    out_level = float(np.max(np.abs(y[w0:w0 + p * n])))
+    def peak(x):                                       # max |x| without a copy of |x|
+        return max(float(np.max(x)), -float(np.min(x)))
+    in_level = peak(r[w0:w0 + p * n]) if r is not None else peak(period)
+    out_level = peak(y[w0:w0 + p * n])
     return ResponseEstimate(
         freq_hz=np.asarray(plan.freq_hz, dtype=float).copy(), h=h, cov_h=cov_h, dof=dof, u_gain_db=ug,
         u_phase_deg=up, snr_db=snr, valid=valid, invalid_reason=reasons, noise_floor_db=floor,
