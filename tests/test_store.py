@@ -322,34 +322,73 @@ def test_two_station_processes_writing_concurrently_lose_nothing(store_url):
             assert c.exec_driver_sql("SELECT COUNT(*) FROM schema_migrations").scalar() == len(st.MIGRATIONS)
 
 
+def _in_write_transaction(url: str, timeout_s: float = 10.0) -> bool:
+    """Wait until a writer is inside a write transaction, seen from outside: SQLite's
+    write lock is held (BEGIN IMMEDIATE from here fails at once), or PostgreSQL lists a
+    `harness` connection with a transaction id (it has written) in pg_stat_activity."""
+    import sqlite3
+
+    from sqlalchemy import create_engine, text
+
+    deadline = time.monotonic() + timeout_s
+    if url.startswith("sqlite"):
+        con = sqlite3.connect(url.split("///", 1)[1], timeout=0, isolation_level=None)
+        try:
+            while time.monotonic() < deadline:
+                try:
+                    con.execute("BEGIN IMMEDIATE")
+                    con.execute("ROLLBACK")
+                except sqlite3.OperationalError as exc:
+                    if "locked" in str(exc):
+                        return True
+                    raise
+        finally:
+            con.close()
+        return False
+    eng = create_engine(url)
+    try:
+        with eng.connect() as c:
+            while time.monotonic() < deadline:
+                n = c.execute(text("SELECT count(*) FROM pg_stat_activity WHERE application_name = 'harness' "
+                                   "AND backend_xid IS NOT NULL AND pid <> pg_backend_pid()")).scalar()
+                c.commit()
+                if n:
+                    return True
+        return False
+    finally:
+        eng.dispose()
+
+
 def test_kill_9_in_the_middle_of_a_write_loses_at_most_that_attempt(store_url):
-    """A writer recording large attempts is killed with SIGKILL right after it began one:
-    every attempt it finished is there, the one in flight is there whole or not at all."""
-    points = 4000                                  # a long transaction, so the kill lands inside it
+    """A writer recording large attempts is killed with SIGKILL while the database shows
+    it inside a write transaction: every attempt it finished is there, the one in flight
+    is there whole or not at all, and the store passes its consistency checks."""
+    points = 4000                                  # a long transaction
     before: set = set()
     for round_ in range(2):
         p = _writer(store_url, f"K{round_}", 1000, points)
-        begun, done = [], []
-        for line in p.stdout:
-            word, *rest = line.split()
-            if word == "begin":
-                begun.append(rest[0])
-            elif word == "done":
-                done.append(rest[0])
-            if word == "begin" and len(begun) >= 4 + round_:
-                os.kill(p.pid, signal.SIGKILL)
+        seen = []
+        for line in p.stdout:                      # one attempt committed: the writer is running
+            seen.append(line)
+            if line.startswith("done"):
                 break
+        assert _in_write_transaction(store_url), "the writer never held a write transaction"
+        os.kill(p.pid, signal.SIGKILL)
+        seen += p.stdout.read().splitlines()
         p.wait(timeout=30)
         assert p.returncode == -signal.SIGKILL
-        in_flight = set(begun) - set(done)
+        words = [ln.split() for ln in seen if ln.strip()]
+        begun = {w[1] for w in words if w[0] == "begin"}
+        done = {w[1] for w in words if w[0] == "done"}
+        in_flight = begun - done
+        assert len(in_flight) <= 1
         with st.open_store(store_url, readonly=True) as s:
             assert s.check() == []                   # integrity_check (SQLite), point counts, orphans
             rows = s.attempts(columns=("id", "uuid", "n_points"))
             new = {r["uuid"] for r in rows} - before
-            assert set(done) <= new <= set(done) | in_flight
+            assert done <= new <= done | in_flight
             for r in rows:
-                if r["uuid"] in in_flight:           # committed just before the kill: whole
-                    assert len(s.points(r["id"])) == r["n_points"] == points
+                assert len(s.points(r["id"])) == r["n_points"]
             before |= new
     with st.open_store(store_url) as s:             # and the store takes new writes afterwards
         s.record_attempt(synthetic_attempt("AFTER-1", points=5))
