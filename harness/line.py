@@ -660,19 +660,22 @@ def run_line(profile_path, station_path, *, source, ui: LineUI | None = None, ou
         fp = fingerprint(load_private_key(station.section("signing").private_key).public_key())
     url = st.database_url(station.section("database"), out, db)
     store = st.open_store(url)
-    replayed = st.replay_spool(store, out)
-
     shared_backend = None
-    sim = cfg.simulate if station.backend == "simulated" else None
-    if backend_factory is None:
-        if sim is not None:
-            def backend_factory(stn, serial, attempt_no):
-                return simulated_board_for(stn, sim, serial, attempt_no)
-        else:
-            shared_backend = make_backend(station)
+    try:
+        replayed = st.replay_spool(store, out)
+        sim = cfg.simulate if station.backend == "simulated" else None
+        if backend_factory is None:
+            if sim is not None:
+                def backend_factory(stn, serial, attempt_no):
+                    return simulated_board_for(stn, sim, serial, attempt_no)
+            else:
+                shared_backend = make_backend(station)
 
-            def backend_factory(stn, serial, attempt_no):
-                return shared_backend
+                def backend_factory(stn, serial, attempt_no):
+                    return shared_backend
+    except BaseException:
+        store.close()
+        raise
 
     golden = golden or cfg.golden
     plots = {"always": True, "never": False, "not-pass": "not-pass"}[cfg.plots]
@@ -717,8 +720,8 @@ def run_line(profile_path, station_path, *, source, ui: LineUI | None = None, ou
                     stopped = "stopped by the operator (Ctrl-C)"
                     break
                 ui.say("")
-                intr.state = "waiting"
                 try:
+                    intr.state = "waiting"
                     raw = source.next_serial("serial number> ")
                 except EndOfSerials:
                     stopped = "no more serial numbers"
@@ -851,8 +854,8 @@ def run_line(profile_path, station_path, *, source, ui: LineUI | None = None, ou
                         break
                     attempt_no += 1
                     if source.interactive and policy.mode == "prompt":
-                        intr.state = "waiting"
                         try:
+                            intr.state = "waiting"
                             ans = source.confirm(f"  RETEST {attempt_no - 1} of {policy.retests}: reseat the board, "
                                                  "then Enter (or 'n' + Enter to reject it now)> ")
                         except KeyboardInterrupt:

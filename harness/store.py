@@ -779,13 +779,9 @@ def parse_time(text: str, what: str = "--since") -> str:
     return when.strftime("%Y-%m-%dT%H:%M:%S.%fZ")
 
 
-def _jsonable_row(row: dict) -> dict:
-    return {k: v for k, v in row.items()}
-
-
 def attempt_summary(row: dict) -> dict[str, Any]:
     """A JSON-friendly attempt (reasons decoded)."""
-    out = _jsonable_row(row)
+    out = dict(row)
     if isinstance(out.get("reasons"), str):
         try:
             out["reasons"] = json.loads(out["reasons"])

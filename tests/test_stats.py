@@ -19,7 +19,6 @@ import json
 import math
 import uuid
 import xml.etree.ElementTree as ET
-from pathlib import Path
 
 import numpy as np
 import pytest
