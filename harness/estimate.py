@@ -515,6 +515,10 @@ def _db10(v):
 # internals: checks
 # ======================================================================================
 def _channels(plan, capture):
+    """The response and reference channels as float64 arrays (no copy when they already
+    are), checked for rate, equal length and finite samples; and the largest and
+    smallest sample of each, ``{name: (hi, lo)}`` (``max`` and ``min`` propagate NaN, so
+    they also tell whether every sample is finite)."""
     fs = float(plan.sample_rate_hz)
     if abs(float(capture.sample_rate_hz) - fs) > 1e-6 * fs:
         raise InvalidMeasurement(f"the capture runs at {capture.sample_rate_hz:g} Hz but the stimulus was "
@@ -524,10 +528,15 @@ def _channels(plan, capture):
     if r is not None and r.size != y.size:
         raise InvalidMeasurement(f"the reference channel has {r.size} samples and the response {y.size}; "
                                  "the channels must come from one stream")
+    ext = {}
     for name, x in (("response", y), ("reference", r)):
-        if x is not None and not np.all(np.isfinite(x)):
+        if x is None or x.size == 0:
+            continue
+        hi, lo = float(np.max(x)), float(np.min(x))
+        if not (math.isfinite(hi) and math.isfinite(lo)):
             raise InvalidMeasurement(f"the {name} channel contains non-finite samples (NaN or inf)")
-    return y, r
+        ext[name] = (hi, lo)
+    return y, r, ext
 
 
 def _check_metadata(capture) -> None:
@@ -545,11 +554,14 @@ def _check_length(n_capture: int, n_signal: int) -> None:
                                  f"{n_signal} samples (capture the signal length plus the latency)")
 
 
-def _check_clipping(x: np.ndarray | None, name: str, clip_dbfs: float) -> None:
+def _check_clipping(x: np.ndarray | None, name: str, clip_dbfs: float,
+                    extremes: tuple[float, float] | None = None) -> None:
+    """Raise on clipping: a sample at or above `clip_dbfs`, or flat tops at the extremes
+    (`_flat_top_runs`). `extremes`: ``(max(x), min(x))`` when already known."""
     if x is None or x.size == 0:
         return
     lim = 10.0 ** (clip_dbfs / 20.0)
-    hi, lo = float(np.max(x)), float(np.min(x))
+    hi, lo = (float(np.max(x)), float(np.min(x))) if extremes is None else extremes
     peak = max(hi, -lo)                                # max |x| without a copy of |x|
     if peak >= lim:
         n = int(np.count_nonzero(np.abs(x) >= lim))
@@ -1006,11 +1018,11 @@ def estimate_multitone(plan, capture, *, min_snr_db: float = DEFAULT_MIN_SNR_DB,
     reps = t_per + p                                   # signal() is `reps` periods
     n_sig = n * reps
     s_spec = np.fft.rfft(period)
-    y, r = _channels(plan, capture)
+    y, r, ext = _channels(plan, capture)
     _check_metadata(capture)
     _check_length(y.size, n_sig)
-    _check_clipping(r, "reference", clip_dbfs)
-    _check_clipping(y, "response", clip_dbfs)
+    _check_clipping(r, "reference", clip_dbfs, ext.get("reference"))
+    _check_clipping(y, "response", clip_dbfs, ext.get("response"))
     _check_silent(r, "reference")
     _check_silent(y, "response")
     notes: list[str] = []
@@ -1332,11 +1344,11 @@ def estimate_stepped_sine(plan, capture, *, four_parameter: bool | None = None,
     m0 = np.asarray(plan.block_samples, dtype=np.int64)
     segs = [(int(a0), int(b0)) for a0, b0 in plan.segments]
     s = plan.signal()
-    y, r = _channels(plan, capture)
+    y, r, ext = _channels(plan, capture)
     _check_metadata(capture)
     _check_length(y.size, s.size)
-    _check_clipping(r, "reference", clip_dbfs)
-    _check_clipping(y, "response", clip_dbfs)
+    _check_clipping(r, "reference", clip_dbfs, ext.get("reference"))
+    _check_clipping(y, "response", clip_dbfs, ext.get("response"))
     _check_silent(r, "reference")
     _check_silent(y, "response")
     notes: list[str] = []
