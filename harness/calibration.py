@@ -53,12 +53,13 @@ def loopback_device(sample_rate_hz: float):
     return DeviceModel(id="loopback", filter=through, model="through connection")
 
 
-def calibrate(station: Station, backend, *, when: _dt.datetime | None = None) -> dict:
-    """Measure the chain through a loopback and return the calibration document."""
+def calibrate(station: Station, backend, *, when: _dt.datetime | None = None, f_min_hz: float = 10.0) -> dict:
+    """Measure the chain through a loopback and return the calibration document
+    (from `f_min_hz` to just below Nyquist; see `calibration_profile`)."""
     from harness.stimulus import plan_for_profile
 
     when = when or _dt.datetime.now(_dt.timezone.utc)
-    prof = calibration_profile(station)
+    prof = calibration_profile(station, f_min_hz=f_min_hz)
     plan = plan_for_profile(prof, station.sample_rate_hz)
     stim = np.asarray(plan.signal(), dtype=np.float64)
     assert_level(stim, station.max_output_dbfs)

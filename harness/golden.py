@@ -13,8 +13,10 @@ beside it::
 
 Every point that both measurements measured well (signal-to-noise ratio at least
 ``min_snr_db`` in both) is compared: today's gain minus the stored gain, and (when a
-phase tolerance is stated and today's phase was assessed) today's phase minus the stored
-phase, wrapped to +-180 deg. The station is verified when every difference is within the
+phase tolerance is stated and today's phase was assessed) today's full phase (every delay
+included: with a reference channel that is the board's own) minus the stored one, wrapped
+to +-180 deg; the phase "with the bulk delay removed" of a certificate is not used, because
+the fitted delay differs a little from run to run. The station is verified when every difference is within the
 stated tolerance. The comparison is part of the certificate (``golden_check``); a station
 that is not verified makes the result ``invalid`` (exit 4) with the reason, because
 nothing measured on it can be trusted.
@@ -26,6 +28,9 @@ Golden file (JSON, written once, never overwritten)::
      "station_id": "...", "created_utc": "...", "source_certificate": {"id", "file", "sha256"},
      "tolerance": {"gain_db": 0.05, "phase_deg": 1.0}, "min_snr_db": 40.0,
      "points": [{"frequency_hz", "gain_db", "phase_deg", "U_gain_db", "U_phase_deg", "snr_db"}, ...]}
+
+``phase_deg`` of a golden point is the full phase (the certificate's phase with its
+``response.delay_s`` put back).
 """
 
 from __future__ import annotations
@@ -52,8 +57,8 @@ class GoldenUnit:
     """A stored golden-unit response (see the module docstring).
 
     Arrays are per point: ``freq_hz`` (Hz), ``gain_db`` (as judged: relative to the
-    profile's reference frequency when it has one), ``phase_deg`` (bulk delay removed;
-    NaN when not stored), ``U_gain_db``, ``snr_db``.
+    profile's reference frequency when it has one), ``phase_deg`` (full phase, every delay
+    included; NaN when not stored), ``U_gain_db``, ``snr_db``.
     """
 
     serial: str
@@ -117,11 +122,15 @@ def golden_from_certificate(cert_path, *, tolerance_gain_db: float, tolerance_ph
     for name, v in (("--tolerance-db", tolerance_gain_db), ("--tolerance-deg", tolerance_phase_deg)):
         if v is not None and not (isinstance(v, (int, float)) and math.isfinite(v) and v > 0):
             raise ConfigError(None, name, f"must be a positive number, got {v!r}")
-    pts = [p for p in cert["points"] if p.get("gain_db") is not None]
+    pts = [dict(p) for p in cert["points"] if p.get("gain_db") is not None]
+    delay = ((cert.get("response") or {}).get("delay_s")) or 0.0
+    for p in pts:         # the full phase: the fitted bulk delay varies from run to run
+        p["phase_deg"] = None if p.get("phase_deg") is None else \
+            float((p["phase_deg"] - 360.0 * p["frequency_hz"] * delay + 180.0) % 360.0 - 180.0)
     if not pts:
         raise ConfigError(str(path), "points", "the certificate has no measured points")
     when = when or _dt.datetime.now(_dt.timezone.utc)
-    keep = ("frequency_hz", "gain_db", "phase_deg", "U_gain_db", "U_phase_deg", "snr_db")
+    keep = ("frequency_hz", "gain_db", "phase_deg", "U_gain_db", "U_phase_deg", "snr_db")  # phase_deg: full
     return {
         "schema": SCHEMA, "kind": KIND,
         "serial": (cert.get("unit") or {}).get("serial"),
@@ -213,7 +222,7 @@ def compare(entry: dict, freq_hz, gain_db, phase_deg, snr_db, valid, *, phase_as
     entry : dict
         The stored golden response and its tolerance.
     freq_hz, gain_db, phase_deg, snr_db : array_like
-        Today's points (gain as judged, phase with the bulk delay removed).
+        Today's points (gain as judged; full phase, every delay included).
     valid : array_like of bool
         Today's points that were measured properly.
     phase_assessed : bool
@@ -302,7 +311,8 @@ def apply_golden(analysis, entry: dict) -> None:
         return
     pc = analysis.phase_check or {}
     valid = np.array([str(v) not in ("invalid",) for v in analysis.point_verdict], dtype=bool)
-    res = compare(entry, analysis.freq_hz, analysis.gain_db, analysis.phase_deg, analysis.snr_db, valid,
+    full_phase = np.degrees(np.angle(analysis.h))
+    res = compare(entry, analysis.freq_hz, analysis.gain_db, full_phase, analysis.snr_db, valid,
                   phase_assessed=pc.get("assessed", True) is not False)
     analysis.golden_check = res
     if res["verdict"] == "verified":

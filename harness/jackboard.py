@@ -33,8 +33,9 @@ One clock, one rate: the board runs at the JACK server's sample rate fs.
 
 Control (one command per line on standard input; one answer line on standard output)
 ----------------------------------------------------------------------------------------
-``stall SECONDS [EVERY]``  sleep SECONDS inside the process callback once (EVERY = 0) or
-                           every EVERY-th period, so the JACK server reports an xrun
+``stall SECONDS [EVERY [AFTER]]``  sleep SECONDS inside the process callback once (EVERY
+                           = 0) or every EVERY-th period, starting AFTER periods from now
+                           (default 0), so the JACK server reports an xrun
 ``nostall``                stop stalling
 ``disconnect``             disconnect both ports from everything (a pulled cable)
 ``status``                 ``status {json}``: periods processed, peak input level seen,
@@ -182,6 +183,8 @@ class StreamingBoard:
         imp = self.device.imperfections
         x = np.asarray(x, dtype=np.float64)
         n = x.size
+        if n == 0:
+            return np.zeros(0)
         rng = self._rng
         rail = imp.clip_level if imp.clip_level is not None else 1.0
         if imp.fault == "open":
@@ -239,7 +242,7 @@ class _Control:
     def __init__(self):
         self.stall_s = 0.0
         self.stall_every = 0
-        self.stall_pending = False
+        self.stall_at = -1              # period number of the next stall (-1: none)
         self.blocks = 0
         self.peak_in = 0.0
         self.xruns = 0
@@ -291,8 +294,8 @@ def main(argv: list[str] | None = None) -> int:
     @client.set_process_callback
     def process(frames):
         ctl.blocks += 1
-        if ctl.stall_s > 0 and (ctl.stall_pending or (ctl.stall_every and ctl.blocks % ctl.stall_every == 0)):
-            ctl.stall_pending = False
+        if ctl.stall_s > 0 and 0 <= ctl.stall_at <= ctl.blocks:
+            ctl.stall_at = ctl.blocks + ctl.stall_every if ctl.stall_every else -1
             ctl.stalls += 1
             time.sleep(ctl.stall_s)
         x = inp.get_array()
@@ -324,11 +327,14 @@ def main(argv: list[str] | None = None) -> int:
             cmd = words[0]
             try:
                 if cmd == "stall":
-                    ctl.stall_every = int(words[2]) if len(words) > 2 else 0
-                    ctl.stall_s = float(words[1])
-                    ctl.stall_pending = ctl.stall_every == 0
+                    every = int(words[2]) if len(words) > 2 else 0
+                    after = int(words[3]) if len(words) > 3 else 0
+                    if every < 0 or after < 0:
+                        raise ValueError("EVERY and AFTER must be >= 0")
+                    ctl.stall_s, ctl.stall_every = float(words[1]), every
+                    ctl.stall_at = ctl.blocks + max(after, 1)
                 elif cmd == "nostall":
-                    ctl.stall_s, ctl.stall_every, ctl.stall_pending = 0.0, 0, False
+                    ctl.stall_s, ctl.stall_every, ctl.stall_at = 0.0, 0, -1
                 elif cmd == "disconnect":
                     for port in (inp, out):
                         port.disconnect()

@@ -27,7 +27,33 @@ import pytest
 ROOT = Path(__file__).resolve().parents[1]
 FIXTURES = ROOT / "fixtures"
 JACK_RATE_HZ = 48000
-JACK_PERIOD = int(os.environ.get("HARNESS_JACK_PERIOD", "256"))
+
+
+def _realtime_allowed() -> bool:
+    """Whether this machine lets a process take SCHED_FIFO (root or CAP_SYS_NICE)."""
+    try:
+        r = subprocess.run([sys.executable, "-c", "import os; os.sched_setscheduler(0, os.SCHED_FIFO, "
+                                                  "os.sched_param(1))"], capture_output=True, timeout=20)
+        return r.returncode == 0
+    except (OSError, subprocess.SubprocessError):
+        return False
+
+
+# Real-time scheduling where the machine allows it, and periods of 1024 samples (21 ms):
+# on a busy shared CI machine (measured at a load of 3 on 2 cores) a non-real-time server
+# with periods of 256 samples reported an xrun in every 4-s measurement, and even with
+# real-time scheduling the Python callbacks (the board's and the harness's) now and then
+# take 8 ms, longer than a 5.3-ms period; with 1024 samples none in 36 s. Without
+# real-time scheduling (--no-realtime): 2048 samples. A measurement with stream errors is
+# rightly invalid, so the test rig must not produce them by itself.
+# HARNESS_JACKD_MODE / HARNESS_JACK_PERIOD override both.
+def jackd_settings() -> tuple[tuple[str, ...], int]:
+    """(scheduling options of jackd, period in samples) for this machine."""
+    mode = os.environ.get("HARNESS_JACKD_MODE")
+    if mode is None:
+        mode = "-R -P 70" if _realtime_allowed() else "--no-realtime"
+    opts = tuple(mode.split())
+    return opts, int(os.environ.get("HARNESS_JACK_PERIOD", "1024" if "-R" in opts else "2048"))
 HOW_TO_ENABLE = ("install the Debian packages jackd2 and libportaudio2 and the test extra "
                  "(pip install -e '.[test]', which brings JACK-Client); then run pytest again")
 
@@ -57,6 +83,17 @@ def need_jack() -> None:
     pytest.skip(msg)
 
 
+def _child_setup() -> None:
+    """In the child before exec: die with the test process (Linux PR_SET_PDEATHSIG), so
+    nothing outlives a killed test run."""
+    try:
+        import ctypes
+
+        ctypes.CDLL(None, use_errno=True).prctl(1, signal.SIGTERM)      # PR_SET_PDEATHSIG = 1
+    except (OSError, AttributeError):
+        pass
+
+
 def _stop(proc: subprocess.Popen | None, timeout: float = 3.0) -> None:
     """Terminate a process group started with start_new_session, then kill it."""
     if proc is None or proc.poll() is not None:
@@ -84,7 +121,8 @@ class Board:
         self.proc = subprocess.Popen([sys.executable, "-m", "harness.jackboard", str(model), "--name", name,
                                       "--server", server],
                                      stdin=subprocess.PIPE, stdout=subprocess.PIPE, stderr=self._stderr,
-                                     text=True, bufsize=1, start_new_session=True, cwd=str(ROOT))
+                                     text=True, bufsize=1, start_new_session=True, cwd=str(ROOT),
+                                     preexec_fn=_child_setup)
         line = self.proc.stdout.readline()
         if not line.startswith("ready "):
             self.stop()
@@ -141,10 +179,11 @@ class JackRig:
                           JACK_NO_AUDIO_RESERVATION="1")
         self.jackd_log = tmp / "jackd.log"
         self._log = open(self.jackd_log, "w")
-        cmd = ["jackd", "--no-realtime", "-n", self.server, "-d", "dummy", "-r", str(JACK_RATE_HZ),
-               "-p", str(JACK_PERIOD), "-C", "2", "-P", "2"]
+        self.mode, self.period = jackd_settings()
+        cmd = ["jackd", *self.mode, "-n", self.server, "-d", "dummy", "-r", str(JACK_RATE_HZ),
+               "-p", str(self.period), "-C", "2", "-P", "2"]
         self.jackd = subprocess.Popen(cmd, stdout=self._log, stderr=subprocess.STDOUT, stdin=subprocess.DEVNULL,
-                                      start_new_session=True)
+                                      start_new_session=True, preexec_fn=_child_setup)
         self.board: Board | None = None
         self.route = "board"
         self.client = None
@@ -159,7 +198,6 @@ class JackRig:
                 if time.monotonic() > deadline:
                     raise RuntimeError(f"jackd did not come up: {self.jackd_log.read_text()[-2000:]}") from None
                 time.sleep(0.1)
-        self.client.activate()
         self.rescan()
 
     # -- PortAudio ------------------------------------------------------------------
@@ -171,9 +209,17 @@ class JackRig:
         sd._terminate()
         sd._initialize()
 
-    def portaudio_ports(self) -> dict:
-        ports = {p.name.split(":", 1)[1]: p.name for p in self.client.get_ports("PortAudio.*", is_audio=True)}
-        return ports
+    def portaudio_ports(self) -> tuple[list[str], list[str]]:
+        """Input and output port names of the open PortAudio stream, in channel order
+        (PortAudio numbers them on from earlier streams: in_2, in_3 ...)."""
+        def order(p):
+            tail = p.name.rsplit("_", 1)[-1]
+            return int(tail) if tail.isdigit() else 0
+
+        ports = self.client.get_ports("PortAudio.*", is_audio=True)
+        ins = [p.name for p in sorted((p for p in ports if p.is_input), key=order)]
+        outs = [p.name for p in sorted((p for p in ports if p.is_output), key=order)]
+        return ins, outs
 
     # -- the board ------------------------------------------------------------------
     def start_board(self, model: Path) -> Board:
@@ -195,15 +241,16 @@ class JackRig:
     # -- wiring -----------------------------------------------------------------------
     def hook(self, info: dict) -> None:
         """harness.backends.audio stream-open hook: wire the new stream by `route`."""
-        self.rewire(self.route)
+        self.rewire(self.route, settle_s=0.0)
 
-    def rewire(self, route: str) -> None:
-        """Wire the open PortAudio stream (disconnecting whatever it had): see the class."""
+    def rewire(self, route: str, settle_s: float = 0.3) -> None:
+        """Wire the open PortAudio stream (disconnecting whatever it had): see the class.
+        A running graph that changes may report an xrun: wait `settle_s` for it to pass."""
         self.route = route
-        pa = self.portaudio_ports()
-        out0, in0, in1 = pa.get("out_0"), pa.get("in_0"), pa.get("in_1")
-        if out0 is None or in0 is None:
-            raise RuntimeError(f"no PortAudio stream ports to wire: {sorted(pa)}")
+        ins, outs = self.portaudio_ports()
+        if not ins or not outs:
+            raise RuntimeError(f"no PortAudio stream ports to wire: inputs {ins}, outputs {outs}")
+        out0, in0, in1 = outs[0], ins[0], (ins[1] if len(ins) > 1 else None)
         for name in (out0, in0, in1):
             if name is None:
                 continue
@@ -229,6 +276,7 @@ class JackRig:
             if src is None or dst is None:
                 raise RuntimeError(f"route {route!r} needs a running board")
             self.client.connect(src, dst)
+        time.sleep(settle_s)
 
     def close(self) -> None:
         import sounddevice as sd
@@ -238,7 +286,6 @@ class JackRig:
         finally:
             try:
                 if self.client is not None:
-                    self.client.deactivate()
                     self.client.close()
             except Exception:
                 pass

@@ -571,7 +571,7 @@ def open_backend(station) -> AudioBackend:
                         reference_channel=station.reference_channel, station_id=station.id)
 
 
-def calibrate_in_session(station, backend: AudioBackend, *, write: bool = True):
+def calibrate_in_session(station, backend: AudioBackend, *, write: bool = True, f_min_hz: float = 10.0):
     """Chain calibration through a loopback in `backend`'s stream session.
 
     Measured like ``harness calibrate`` (`harness.calibration.calibrate`) but the
@@ -584,7 +584,8 @@ def calibrate_in_session(station, backend: AudioBackend, *, write: bool = True):
     -------
     doc : dict
         The calibration document (also written to the station's calibration file when
-        `write` and the station names one).
+        `write` and the station names one). `f_min_hz` is the lowest calibrated frequency
+        (the multitone period grows with its inverse: 10 Hz takes about 9 s).
     calibration : harness.analysis.ChainCalibration
     info : dict
         For `harness.measure.measure_unit(calibration_info=...)`: id, dates, file and
@@ -592,7 +593,7 @@ def calibrate_in_session(station, backend: AudioBackend, *, write: bool = True):
     """
     from harness.calibration import calibrate, parse_calibration, write_calibration
 
-    doc = calibrate(station, backend)
+    doc = calibrate(station, backend, f_min_hz=f_min_hz)
     doc["stream_session"] = backend.session_id
     path = write_calibration(station, doc) if write and station.calibration.file is not None else None
     cal = parse_calibration(doc, str(path) if path else "calibration")
