@@ -343,29 +343,42 @@ def resample_by_ratio(x, ratio: float, n_out: int | None = None) -> np.ndarray:
         n_out = int(math.floor((L - 1) / ratio)) + 1
     if L == 0 or n_out <= 0:
         return np.zeros(max(n_out, 0))
-    spec = scipy.fft.rfft(x)
-    c = spec.copy()
-    if L % 2 == 0:
-        c[1:-1] *= 2.0
-    else:
-        c[1:] *= 2.0
-    K, M = c.size, int(n_out)
-    eps = float(ratio) - 1.0
+    return _resample_spectra([scipy.fft.rfft(x)], L, ratio, int(n_out))[0]
 
-    def chirp(k):
-        k = np.asarray(k, dtype=np.int64)
-        k2 = (k * k) % (2 * L)                    # exact: pi k^2 / L modulo 2 pi
-        kf = k.astype(float)
-        return np.exp(1j * (np.pi * k2 / L + np.pi * eps * kf * kf / L))
+
+def _resample_spectra(specs: list, L: int, ratio: float, n_out: int) -> list:
+    """`resample_by_ratio` of channels given by their one-sided spectra
+    (``scipy.fft.rfft`` of ``L`` samples each) onto one output clock: the chirps and the
+    FFT of the chirp filter are computed once for all of them."""
+    K, M = L // 2 + 1, int(n_out)
+    eps = float(ratio) - 1.0
+    k = np.arange(max(K, M), dtype=np.int64)
+    k2 = (k * k) % (2 * L)                        # exact: pi k^2 / L modulo 2 pi
+    kf = k.astype(float)
+    chirp = np.exp(1j * (np.pi * k2 / L + np.pi * eps * kf * kf / L))
+    del k, k2, kf
 
     # sum_k c_k W^{k m}, W = exp(j 2 pi ratio / L); k m = (k^2 + m^2 - (m - k)^2) / 2
     nfft = scipy.fft.next_fast_len(K + M - 1)
-    a = c * chirp(np.arange(K))
     b = np.zeros(nfft, dtype=complex)
-    b[:M] = np.conj(chirp(np.arange(M)))
-    b[nfft - (K - 1):] = np.conj(chirp(np.arange(K - 1, 0, -1)))
-    y = scipy.fft.ifft(scipy.fft.fft(a, nfft) * scipy.fft.fft(b))[:M] * chirp(np.arange(M))
-    return y.real / L
+    b[:M] = np.conj(chirp[:M])
+    b[nfft - (K - 1):] = np.conj(chirp[K - 1:0:-1])
+    fb = scipy.fft.fft(b, overwrite_x=True)
+    del b
+    out = []
+    for spec in specs:
+        a = spec * chirp[:K]                      # c_k = 2 X_k except at DC (and Nyquist)
+        if L % 2 == 0:
+            a[1:-1] *= 2.0
+        else:
+            a[1:] *= 2.0
+        z = scipy.fft.fft(a, nfft)
+        del a
+        z *= fb
+        z = scipy.fft.ifft(z, overwrite_x=True)[:M]
+        z *= chirp[:M]
+        out.append(z.real / L)
+    return out
 
 
 # ======================================================================================
@@ -1069,15 +1082,29 @@ def estimate_multitone(plan, capture, *, min_snr_db: float = DEFAULT_MIN_SNR_DB,
         return stats[1][nb_use][neigh].mean(axis=1)
 
     drift_cycles = abs(eps_c) * (n / 2) * (t_per + p)
+    # resampling (`resample_by_ratio`) starts from the spectrum of the whole channel:
+    # kept, since the channel may be resampled twice (coarse, then final ratio)
+    full_spec: dict = {}
+
+    def resampled(chans, ratio):
+        specs = []
+        for name, x in chans:
+            if name not in full_spec:
+                full_spec[name] = scipy.fft.rfft(x)
+            specs.append(full_spec[name])
+        return _resample_spectra(specs, a.size, ratio, int(math.floor((a.size - 1) / ratio)) + 1)
+
     a1, lag1, alpha1 = a, lag0, 1.0
     if drift_cycles > 0.02:                            # tones would leak: resample first
         alpha1 = 1.0 + eps_c
-        a1 = resample_by_ratio(a, alpha1)
+        a1 = resampled([(align, a)], alpha1)[0]
         lag1 = int(round(lag0 / alpha1))
     if lag1 + (t_per + p) * n > a1.size:
         a1, lag1 = a, lag0
     spec_a = per_period(a1, lag1)
     stats_a = bin_stats(spec_a)
+    if a1 is not a:
+        a1 = None                                      # a resampled copy: only its spectrum is reused
     d_eps, u_eps, used = _phase_drift(spec_a[:, bins], bins, tone_noise_var(stats_a))
     details["clock_tones_used"] = used
     if np.isfinite(u_eps):
@@ -1091,8 +1118,9 @@ def estimate_multitone(plan, capture, *, min_snr_db: float = DEFAULT_MIN_SNR_DB,
     do_correct = significant if correct_clock is None else bool(correct_clock)
     if do_correct and eps != 0.0:
         alpha = 1.0 + eps
-        y = resample_by_ratio(y, alpha)
-        r = None if r is None else resample_by_ratio(r, alpha)
+        chans = resampled([("response", y)] + ([("reference", r)] if r is not None else []), alpha)
+        y, r = chans[0], (chans[1] if r is not None else None)
+        del chans
         a = r if r is not None else y
         guess = int(round(lag0 / alpha))
         half = int(math.ceil(max_clock_ppm * 1e-6 * n_sig)) + 8
@@ -1105,6 +1133,7 @@ def estimate_multitone(plan, capture, *, min_snr_db: float = DEFAULT_MIN_SNR_DB,
             notes.append(f"clock offset {eps * 1e6:+.4f} ppm not significant (u = {u_eps * 1e6:.4f} ppm); "
                          "no correction")
     details["clock_corrected"] = bool(do_correct and eps != 0.0)
+    full_spec.clear()
     if lag + (t_per + p) * n - guard > a.size:
         over = lag + (t_per + p) * n - guard - a.size
         raise InvalidMeasurement(f"capture too short: the measured periods end {over} samples after the capture "
