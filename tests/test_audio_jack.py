@@ -192,6 +192,20 @@ def test_audio_station_errors_name_file_key_and_problem(tmp_path, capsys, old, n
     assert str(st) in msg and key in msg and "Traceback" not in msg
 
 
+def test_example_station_and_readme_audio_examples_are_valid(tmp_path):
+    st = load_station(FIXTURES / "station-audio-example.toml")
+    cfg = st.section("audio")
+    assert (cfg.device, cfg.stimulus_output, cfg.response_input, cfg.reference_input) == ("USB Audio", 1, 1, 2)
+    # 20 log10(0.5 V / 1.5 V) = -9.54 dB is tighter than max_output_dbfs = -6
+    assert st.max_output_dbfs == pytest.approx(20 * np.log10(0.5 / 1.5))
+    readme = (ROOT / "README.md").read_text(encoding="utf-8")
+    blocks = [b for b in re.findall(r"```toml\n(.*?)```", readme, flags=re.S) if "[station.audio]" in b]
+    for i, block in enumerate(blocks):      # every README audio station example loads
+        load_station(_write(tmp_path, f"readme-{i}.toml", block))
+    if "## Measuring with an audio interface" in readme:
+        assert (FIXTURES / "station-audio-example.toml").read_text() in readme
+
+
 def test_max_output_volts_tightens_the_dbfs_limit(tmp_path):
     # 20 log10(0.5 V / 2.0 V) = -12.04 dB (definition of the dB of a voltage ratio)
     st = load_station(_write(tmp_path, "st.toml", AUDIO_STATION.replace(

@@ -549,16 +549,15 @@ class AudioBackend:
             info[f"{name}_rise_db"] = None if math.isinf(rise) else round(rise, 2)
             if not rise >= need:
                 inp = self.config.response_input if name == "response" else self.config.reference_input
-                shown = "nothing" if rise == -math.inf else f"{rise:.1f} dB"
+                shown = ("did not come back at all" if rise == -math.inf else
+                         f"came back only {rise:.1f} dB above the background (need {need:g} dB)")
                 if name == "response":
                     raise InvalidMeasurement(
-                        f"no signal: is the board connected? The pilot ({level_dbfs:.0f} dBFS chirp) came back "
-                        f"{shown} above the background on input {inp} (response) of {self.device['name']}; "
-                        f"need {need:g} dB. Nothing else was played.")
+                        f"no signal: is the board connected? The pilot ({level_dbfs:.0f} dBFS chirp) {shown} on "
+                        f"input {inp} (response) of {self.device['name']}. Nothing else was played.")
                 raise InvalidMeasurement(
-                    f"no reference: the pilot did not come back on input {inp} (reference) of "
-                    f"{self.device['name']} ({shown} above the background, need {need:g} dB); check the "
-                    "loopback cable from the output to the reference input")
+                    f"no reference: the pilot ({level_dbfs:.0f} dBFS chirp) {shown} on input {inp} (reference) of "
+                    f"{self.device['name']}; check the loopback cable from the output to the reference input")
         return info
 
 
