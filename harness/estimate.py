@@ -1070,10 +1070,19 @@ def estimate_multitone(plan, capture, *, min_snr_db: float = DEFAULT_MIN_SNR_DB,
     def per_period(x, lag):
         return np.fft.rfft(_windows(x, lag + t_per * n - guard, n, p), axis=1)
 
-    def bin_stats(spec):
-        """Mean over the periods and period-to-period variance (ddof 1) of every bin
-        (computed once per spectrum; the checks below take the bins they need)."""
-        return spec.mean(axis=0), np.var(spec, axis=0, ddof=1)
+    def analysed(x, lag):
+        """Per-period spectra of `x` reduced to what is used: the excited bins of every
+        period, and the mean over the periods and the period-to-period variance (ddof
+        1) of every bin (the checks below take the bins they need). In blocks of bins,
+        so the temporaries stay small; the full spectra are dropped."""
+        spec = per_period(x, lag)
+        mean = np.empty(spec.shape[1], dtype=complex)
+        var = np.empty(spec.shape[1])
+        for j in range(0, spec.shape[1], 4096):
+            blk = spec[:, j:j + 4096]
+            mean[j:j + 4096] = blk.mean(axis=0)
+            var[j:j + 4096] = np.var(blk, axis=0, ddof=1)
+        return spec[:, bins], (mean, var)
 
     def tone_noise_var(stats):
         """Per-period noise variance near each tone, from non-excited bins' scatter."""
@@ -1101,11 +1110,10 @@ def estimate_multitone(plan, capture, *, min_snr_db: float = DEFAULT_MIN_SNR_DB,
         lag1 = int(round(lag0 / alpha1))
     if lag1 + (t_per + p) * n > a1.size:
         a1, lag1 = a, lag0
-    spec_a = per_period(a1, lag1)
-    stats_a = bin_stats(spec_a)
+    tones_a, stats_a = analysed(a1, lag1)
     if a1 is not a:
         a1 = None                                      # a resampled copy: only its spectrum is reused
-    d_eps, u_eps, used = _phase_drift(spec_a[:, bins], bins, tone_noise_var(stats_a))
+    d_eps, u_eps, used = _phase_drift(tones_a, bins, tone_noise_var(stats_a))
     details["clock_tones_used"] = used
     if np.isfinite(u_eps):
         eps = alpha1 * (1.0 + d_eps) - 1.0
@@ -1149,15 +1157,13 @@ def estimate_multitone(plan, capture, *, min_snr_db: float = DEFAULT_MIN_SNR_DB,
     # -- spectra, ratio, covariance ----------------------------------------------------
     # (the clock spectrum is reused when it came from the same channel and lag)
     def spectrum(x):
-        return (spec_a, stats_a) if (x is a1 and lag == lag1) else (lambda sp: (sp, bin_stats(sp)))(
-            per_period(x, lag))
+        return (tones_a, stats_a) if (x is a1 and lag == lag1) else analysed(x, lag)
 
-    ys, stats_y = spectrum(y)
-    yp = ys[:, bins]
+    yp, stats_y = spectrum(y)
     omega = 2.0 * np.pi * bins / n                     # rad/sample
     if r is not None:
-        us, stats_u = spectrum(r)
-        g, cov, ym, um = _ratio_of_means(yp, us[:, bins], None)
+        rp, stats_u = spectrum(r)
+        g, cov, ym, um = _ratio_of_means(yp, rp, None)
         h, cov_h = g, cov
     else:
         g, cov, ym, um = _ratio_of_means(yp, None, s_spec[bins])
@@ -1167,7 +1173,7 @@ def estimate_multitone(plan, capture, *, min_snr_db: float = DEFAULT_MIN_SNR_DB,
             pos = (t_per + p / 2.0) * n
             cov_h = _add_phase_variance(cov_h, h, (omega * pos * u_eps) ** 2)
     dof = np.full(k, float(p - 1))
-    per = yp / (us[:, bins] if r is not None else s_spec[bins][None, :])
+    per = yp / (rp if r is not None else s_spec[bins][None, :])
     if r is None:
         per = per * np.exp(-1j * omega * (lag - guard))[None, :]
     allow = _drift_allowance(per)
