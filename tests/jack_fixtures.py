@@ -165,7 +165,8 @@ class JackRig:
     * ``"loopback"``: output 1 -> input 1 and input 2 (the board replaced by a through
       connection, for a chain calibration);
     * ``"open"``: output 1 -> board in and input 2; nothing reaches input 1 (the cable
-      from the board's output is not plugged).
+      from the board's output is not plugged);
+    * ``"no-reference"``: as ``"board"`` without the loopback to input 2.
     """
 
     def __init__(self, tmp: Path):
@@ -281,7 +282,7 @@ class JackRig:
         board_in = f"{self.board.name}:in_1" if self.board else None
         board_out = f"{self.board.name}:out_1" if self.board else None
         pairs = []
-        if route == "board":
+        if route in ("board", "no-reference"):
             pairs = [(out0, board_in), (board_out, in0)]
         elif route == "loopback":
             pairs = [(out0, in0)]
@@ -289,7 +290,7 @@ class JackRig:
             pairs = [(out0, board_in)]
         else:
             raise ValueError(route)
-        if in1 is not None:
+        if in1 is not None and route != "no-reference":
             pairs.append((out0, in1))
         for src, dst in pairs:
             if src is None or dst is None:

@@ -356,7 +356,9 @@ def test_xover_measured_through_jack_agrees_with_the_model(jack_rig, tmp_path):
     st = load_station(FIXTURES / "station-audio-jack.toml")
     with audio.open_backend(st) as backend:
         result = measure_unit(prof, st, "KX2-JACK", backend=backend, out_dir=tmp_path / "out")
-    assert result.verdict != "invalid", result.reasons
+    # the nominal KX-2 meets its gain mask and its phase limit lines
+    assert result.verdict == "pass", result.reasons
+    assert result.certificate["phase_check"]["rule"] == "limits"
     board = StreamingBoard(load_device_model(XOVER_MODEL), FS)
     assert _assert_agrees(result, board) >= 15
     assert main(["recompute", str(result.json_path)]) == 0
@@ -506,6 +508,15 @@ def test_disconnected_board_gives_invalid_and_no_stimulus(jack_rig, tmp_path):
     assert result.reasons[0].startswith("no signal: is the board connected?")
     # only the pilot (-30 dBFS) reached the board, never the -12 dBFS stimulus
     assert board.status()["peak_in"] <= 10 ** (-30 / 20) * 1.001
+    # the loopback cable to the reference input not plugged
+    jack_rig.route = "no-reference"
+    try:
+        with audio.open_backend(st) as backend:
+            result = measure_unit(prof, st, "KD8-NOREF", backend=backend, out_dir=tmp_path)
+    finally:
+        jack_rig.route = "board"
+    assert result.verdict == "invalid" and result.reasons[0].startswith("no reference:")
+    assert "input 2 (reference)" in result.reasons[0]
     # the board itself pulls its cables while a stream runs
     jack_rig.route = "board"
     with audio.open_backend(st) as backend:
