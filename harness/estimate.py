@@ -965,9 +965,10 @@ def estimate_multitone(plan, capture, *, min_snr_db: float = DEFAULT_MIN_SNR_DB,
     1. Checks: sample rate, backend flags, length, clipping (samples at or above
        `clip_dbfs`, or flat tops), silent channels.
     2. Start of the stimulus: the lag of the largest cross-correlation between the
-       capture and the played signal (`scipy.signal.fftconvolve`), on the reference
-       channel when present, else on the response. Over the whole signal the true start
-       beats a start one period off (more periods overlap).
+       capture and the played signal (`scipy.signal.fftconvolve`; the played signal is
+       whole periods, so the capture is first folded onto one period, `_xcorr`), on the
+       reference channel when present, else on the response. Over the whole signal the
+       true start beats a start one period off (more periods overlap).
     3. Presence: at least two tones PRESENCE_DB above the median noise bin, on the
        reference (else "no reference") and on the response (else "no signal from the
        device under test").
