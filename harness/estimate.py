@@ -47,6 +47,7 @@ DEFAULT_MAX_CLOCK_PPM = 250.0
 NOISE_BINS_PER_TONE = 8      # non-excited bins averaged for the noise near each tone
 MIN_NOISE_BIN = 3            # bins below this (DC drift, 1/f) are not used for noise
 DROPOUT_BURST_RATIO = 10.0   # period-difference burst this many times the median = dropout
+NEAR_NYQUIST_FRACTION = 0.45   # see _jump_floor
 BLOCK_SCATTER_RATIO = 100.0  # stepped sine: block scatter this many times the noise = jump
 HARMONICS = 5                # stepped sine: harmonics fitted for distortion and noise
 END_GUARD_SAMPLES = 64       # multitone windows end this much before the stimulus ends
@@ -1281,8 +1282,18 @@ def _harmonic_fit(x: np.ndarray, w: float, harmonics: int) -> tuple[np.ndarray, 
     return ph, float(np.sum(res * res) / dof), d.shape[1]
 
 
+def _jump_floor(freq_hz: float, fs_hz: float) -> float:
+    """Smallest relative change (squared) of a tone's phasor taken as a jump.
+
+    1e-6 (a 1 mrad phase step or a 0.1 % amplitude step). Above NEAR_NYQUIST_FRACTION of
+    the sample rate 1e-4 (10 mrad, 1 %): converter and resampler filters are not ideal
+    there and their phase can wander slowly (seen with a simulated clock offset at 0.48 fs);
+    a lost sample still moves such a tone by 2 pi f / fs, about 3 rad."""
+    return 1e-4 if freq_hz > NEAR_NYQUIST_FRACTION * fs_hz else 1e-6
+
+
 def _block_jump(blocks: np.ndarray, residuals: list, m: int, freq_hz: float, where: int, name: str,
-                snr_db: float) -> InvalidMeasurement | None:
+                snr_db: float, fs_hz: float = float("inf")) -> InvalidMeasurement | None:
     """A tone whose block phasors scatter BLOCK_SCATTER_RATIO times more than the noise
     within the blocks allows (``4 sigma^2 / m`` per block phasor) has a jump in it. On
     the reference that is a dropout; on the response it is one only when a block also
@@ -1293,7 +1304,8 @@ def _block_jump(blocks: np.ndarray, residuals: list, m: int, freq_hz: float, whe
     sc = float(np.var(blocks, ddof=1))
     med = float(np.median(residuals))
     expect = 4.0 * med ** 2 / max(1, m)
-    if not (expect > 0 and sc > BLOCK_SCATTER_RATIO * expect and sc > 1e-6 * abs(np.mean(blocks)) ** 2):
+    if not (expect > 0 and sc > BLOCK_SCATTER_RATIO * expect
+            and sc > _jump_floor(freq_hz, fs_hz) * abs(np.mean(blocks)) ** 2):
         return None
     if name == "reference":
         return InvalidMeasurement(
@@ -1519,9 +1531,9 @@ def estimate_stepped_sine(plan, capture, *, four_parameter: bool | None = None,
             f0 = first[i] = 0
         kept = slice(f0, nblk)
         if jump is None and nblk - f0 >= 2:
-            jump = _block_jump(yb[kept, i], blk_res[f0:], int(m0[i]), freq[i], lo, "response", snr[i])
+            jump = _block_jump(yb[kept, i], blk_res[f0:], int(m0[i]), freq[i], lo, "response", snr[i], fs)
         if jump is None and r is not None and nblk - f0 >= 2:
-            jump = _block_jump(ub[kept, i], blk_res_u[f0:], int(m0[i]), freq[i], lo, "reference", snr_u[i])
+            jump = _block_jump(ub[kept, i], blk_res_u[f0:], int(m0[i]), freq[i], lo, "reference", snr_u[i], fs)
             # the reference keeps its phase through the settling interval (no device there)
             s0 = int(round(lag0 + int(plan.step_starts[i]) * alpha)) + 64
             if jump is None and lo - s0 >= max(64, int(2 * np.pi / wc)):
@@ -1529,7 +1541,15 @@ def estimate_stepped_sine(plan, capture, *, four_parameter: bool | None = None,
                 phs *= np.exp(-1j * wc * (s0 - lag0))
                 um_i = np.mean(ub[:, i])
                 diff2 = abs(phs - um_i) ** 2
-                if diff2 > BLOCK_SCATTER_RATIO * 4.0 * res_s ** 2 / (lo - s0) and diff2 > 1e-6 * abs(um_i) ** 2:
+                # what the clock estimate leaves open: a residual frequency error of
+                # u_clk accumulates 2 pi f u_clk T rad over the T seconds between the
+                # settling interval and the segment (five of those are allowed; a lost
+                # sample at f moves the phase by 2 pi f / fs, far more at high f)
+                u_clk = (u_eps if applied else abs(eps) + 3.0 * u_eps) if np.isfinite(u_eps) \
+                    else max_clock_ppm * 1e-6
+                drift = 5.0 * 2.0 * np.pi * freq[i] * u_clk * (lo - s0) / fs
+                if diff2 > BLOCK_SCATTER_RATIO * 4.0 * res_s ** 2 / (lo - s0) and \
+                        diff2 > (_jump_floor(freq[i], fs) + drift ** 2) * abs(um_i) ** 2:
                     jump = InvalidMeasurement(
                         f"dropout: the reference tone at {freq[i]:.6g} Hz changes phase between its settling "
                         f"interval and its capture segment (capture samples {s0}..{lo}): samples lost or inserted")

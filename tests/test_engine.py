@@ -359,3 +359,21 @@ def test_cli_run_refuses_expired_calibration_with_exit_4(tmp_path, capsys):
     (tmp_path / "cal" / "noref.json").write_text(json.dumps(cal))
     assert main(args) == 4
     assert "expired" in capsys.readouterr().err
+
+
+def test_stepped_sine_with_clock_offset_near_nyquist_is_not_a_false_dropout(tmp_path):
+    """A tone at 0.479 fs with an 8 ppm clock offset between playback and capture: the
+    simulated interface's resampler is not ideal there and its phase wanders by a few
+    mrad over a second; that must not be taken for lost samples (a lost sample moves a
+    23 kHz tone by 2 pi 23000 / 48000 = 3 rad). Common practice: dropout detection
+    thresholds sit far above the phase noise of the converters."""
+    p = tmp_path / "ss.toml"
+    p.write_text(KD8_PROFILE.format(pass_min="-0.5", method="stepped-sine", rule="guarded")
+                 .replace("points_per_decade = 10\nstart_hz = 200\nstop_hz = 22000\n", "")
+                 .replace("[stimulus]\n", "[stimulus]\nfrequencies_hz = [300.0, 1000.0, 3000.0, 16000.0, 23000.0]\n"
+                                          "settle_s = 0.5\n")
+                 .replace("stop_hz = 22000\nmax_db = -20", "stop_hz = 23000\nmax_db = -20"))
+    prof = load_profile(p)
+    a, board, _ = run(prof, kd8_model(output_noise_dbfs=-100.0, clock_offset_ppm=8.0), chain_latency=50)
+    assert a.verdict == "pass", a.reasons
+    assert abs(a.estimate["clock_offset_ppm"] - 8.0) < 0.1
