@@ -241,21 +241,26 @@ def _analyze_estimate(profile: Profile, est, station: StationFacts,
 
     low, high = mask.limits(f)
 
-    # Points the estimator could not measure properly. Where only a ceiling applies
-    # (stop band) and the response is merely lost in the noise, the point is judged on
-    # an upper bound instead: the larger of the measured gain and the noise floor there
-    # (the smallest gain distinguishable from noise), which can only overstate the gain.
+    # Stop-band points lost in the noise. Where only a ceiling applies and the response
+    # is at or near the noise (below the station's minimum SNR, or marked invalid by the
+    # estimator for noise alone), the point is judged on an upper bound of the gain:
+    # |H| + 3 sigma, with sigma the noise floor there (the amplitude the noise alone
+    # gives a phasor), i.e. 20 lg(10^(g/20) + 3 * 10^(floor/20)). Its Type A scatter is
+    # already inside the bound, so only the Type B part of U guards it.
     est_valid = np.asarray(est.valid, dtype=bool)
     why = list(getattr(est, "invalid_reason", None) or [None] * f.size)
     upper_only = ~np.isfinite(low) & np.isfinite(high)
     nf = np.asarray(getattr(est, "noise_floor_db", np.full(f.size, -np.inf)), dtype=float)
     nf_rel = nf - (gain_abs_db[ref_i] if ref_i is not None else 0.0)
     noise_limited = np.array([bool(r) and ("noise" in str(r).lower() or "snr" in str(r).lower()) for r in why])
-    bounded = ~est_valid & upper_only & noise_limited
+    bounded = upper_only & (snr < station.min_snr_db) & (est_valid | noise_limited)
     if np.any(bounded):
-        gain_db = np.where(bounded, np.maximum(gain_db, nf_rel), gain_db)
-        notes.append(f"{int(bounded.sum())} stop-band point(s) lie below the noise floor; each is judged on an "
-                     "upper bound (the noise floor there), which overstates the gain")
+        with np.errstate(divide="ignore", over="ignore"):
+            bound_db = 20.0 * np.log10(10.0 ** (gain_db / 20.0) + 3.0 * 10.0 ** (nf_rel / 20.0))
+        gain_db = np.where(bounded, bound_db, gain_db)
+        notes.append(f"{int(bounded.sum())} stop-band point(s) lie at or below the noise floor; each is judged on "
+                     "an upper bound of its gain (measured amplitude plus three times the noise there), which "
+                     "can only overstate it")
     valid = est_valid | bounded
     unusable = ~valid & (np.isfinite(low) | np.isfinite(high))
     if np.any(unusable):
@@ -274,8 +279,14 @@ def _analyze_estimate(profile: Profile, est, station: StationFacts,
     marg = margin(gain_db, low, high)
 
     U = g_budget.expanded
-    pd = dec.decide(gain_db, low, high, rule=d.rule, expanded=U, u=g_budget.u_c, dof=g_budget.nu_eff,
+    u_b = np.sqrt(np.sum([c.u ** 2 for c in g_budget.components if c.kind == "B"], axis=0)) \
+        if any(c.kind == "B" for c in g_budget.components) else np.zeros(f.size)
+    U_dec = np.where(bounded, 2.0 * u_b, U)             # bounded points: Type B only (see above)
+    u_dec = np.where(bounded, u_b, g_budget.u_c)
+    nu_dec = np.where(bounded, np.inf, g_budget.nu_eff)
+    pd = dec.decide(gain_db, low, high, rule=d.rule, expanded=U_dec, u=u_dec, dof=nu_dec,
                     min_probability=d.min_probability, valid=valid)
+    outcome_bound = [" (upper bound, below noise)" if b else "" for b in bounded]
     verdicts = list(pd.verdict)
 
     phase_check = None
@@ -325,7 +336,8 @@ def _analyze_estimate(profile: Profile, est, station: StationFacts,
     return Analysis(verdict, reasons, d.rule, d.confidence, freq_hz=f, h=h, gain_db=gain_db,
                     phase_deg=phase_deg, delay_s=delay_s, u_delay_s=u_delay, gain=g_budget,
                     phase=p_budget, low_db=low, high_db=high, margin_db=marg,
-                    point_verdict=pd.verdict, point_outcome=pd.outcome, probability=pd.probability,
+                    point_verdict=pd.verdict, point_outcome=np.array([o + b for o, b in zip(pd.outcome, outcome_bound)],
+                                                                      dtype=object), probability=pd.probability,
                     snr_db=snr, point_notes=notes, phase_check=phase_check, bands=bands,
                     estimate=_est_dict(est), reference_index=ref_i)
 
