@@ -3,7 +3,9 @@
 Many boards under test have a serial command port (a UART behind a USB adapter): they
 report what they are and accept settings (filter mode, gain). A station declares it in
 ``[station.control]``; a profile may require settings with its ``[control]`` table
-(``mode``, ``gain_db``). `harness.measure.run_from_files` then reads the board's identity
+(``mode``, ``gain_db``) and may carry the product's board command map (``commands``, a
+table or a file relative to the profile, same keys as below), which then replaces the
+station's. `harness.measure.run_from_files` then reads the board's identity
 into the certificate's ``unit`` and sets the required mode and gain before measuring;
 a board that cannot be set is refused (exit 4, nothing measured).
 
@@ -403,6 +405,10 @@ def prepare_board(station, profile, serial: str) -> dict:
                                        "applied": False, "note": "simulated station without board control"}}
         raise InvalidMeasurement(f"profile {profile.id} requires board settings (mode {mode!r}, gain_db {gain!r}) "
                                  f"but station {station.id} has no [station.control] to set them; refused")
+    if getattr(req, "commands", None) is not None:     # the product's own command map wins
+        import dataclasses
+
+        cfg = dataclasses.replace(cfg, commands=req.commands)
     with BoardControl(cfg) as board:
         ident = board.identity()
         sn = ident.get("serial")

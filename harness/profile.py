@@ -43,7 +43,7 @@ _STIMULUS_KEYS = ("method", "points_per_decade", "points", "spacing", "frequenci
                   "start_hz", "stop_hz", "level_dbfs", "periods", "transient_periods",
                   "period_samples", "unexcited_lines", "settle_s", "cycles", "min_tone_s")
 _DECISION_KEYS = ("rule", "confidence", "min_probability")
-_CONTROL_KEYS = ("mode", "gain_db")
+_CONTROL_KEYS = ("mode", "gain_db", "commands")
 
 
 @dataclass(frozen=True)
@@ -84,10 +84,13 @@ class DecisionConfig:
 
 @dataclass(frozen=True)
 class ControlConfig:
-    """Board settings a profile requires before measuring (serial board control)."""
+    """Board settings a profile requires before measuring (serial board control), and
+    optionally the product's own board command map (``commands``: a table, or a file
+    relative to the profile), which then takes the place of the station's."""
 
     mode: str | None = None
     gain_db: float | None = None
+    commands: object | None = None      # harness.control.BoardCommands
 
 
 @dataclass(frozen=True)
@@ -152,7 +155,7 @@ def parse_profile(data: dict, *, file: str | None = None, sha256: str | None = N
     phase = _parse_phase(top.table("phase", None), bands, file)
     stimulus = _parse_stimulus(top.table("stimulus", None), fs, domain)
     decision = _parse_decision(top.table("decision", None))
-    control = _parse_control(top.table("control", None))
+    control = _parse_control(top.table("control", None), file)
 
     if ref_hz is not None and not any(b.covers(ref_hz) for b in bands if b.kind in ("pass", "limits")):
         raise prof.error("reference_hz", f"{ref_hz:g} Hz lies in no pass or limits band; "
@@ -398,11 +401,27 @@ def _parse_decision(t: Table | None) -> DecisionConfig:
     return DecisionConfig(rule, conf, pmin)
 
 
-def _parse_control(t: Table | None) -> ControlConfig:
+def _parse_control(t: Table | None, file: str | None) -> ControlConfig:
     if t is None:
         return ControlConfig()
     t.check_known(_CONTROL_KEYS)
-    return ControlConfig(mode=t.str("mode", None), gain_db=t.float("gain_db", None))
+    commands = None
+    if t.has("commands"):
+        from harness import control  # the board command-map format lives with board control
+
+        raw = t.data["commands"]
+        if isinstance(raw, str):
+            p = Path(raw)
+            if not p.is_absolute() and file is not None:
+                p = Path(file).resolve().parent / p
+            if not p.is_file():
+                raise t.error("commands", f"board command-map file not found: {p}")
+            commands = control.load_commands(p)
+        elif isinstance(raw, dict):
+            commands = control.parse_commands(raw, file=file, path=t.key("commands"))
+        else:
+            raise t.error("commands", "must be a file name or a table")
+    return ControlConfig(mode=t.str("mode", None), gain_db=t.float("gain_db", None), commands=commands)
 
 
 # --------------------------------------------------------------------------------------

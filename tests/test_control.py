@@ -303,6 +303,25 @@ def test_run_sets_the_profiles_mode_and_records_the_board(firmware, tmp_path):
         assert board.mode() == "bypass"
 
 
+def test_profile_carries_the_products_command_map(firmware, tmp_path):
+    """The board's command language can come with the product's profile: the station's
+    map is then replaced (here the station's map is broken on purpose)."""
+    port = firmware()
+    st = tmp_path / "station.toml"
+    st.write_text(station_text(port, commands=COMMANDS_TOML.replace('identity = "', 'identity = "X')))
+    (tmp_path / "kn50-commands.toml").write_text(COMMANDS_TOML.replace("[station.control.commands]", ""))
+    prof = tmp_path / "p.toml"
+    prof.write_text(PROFILE.format(control='[control]\nmode = "notch"\ncommands = "kn50-commands.toml"'))
+    res = run_from_files(prof, st, "KN50-NOMINAL", out_dir=tmp_path / "out")
+    assert res.verdict == "pass", res.reasons
+    assert json.loads(res.json_path.read_text())["unit"]["mode"] == "notch"
+    # a bad map in the profile names the profile file and key
+    prof.write_text(PROFILE.format(control='[control]\nmode = "notch"\ncommands = "nope.toml"'))
+    with pytest.raises(ConfigError) as e:
+        run_from_files(prof, st, "KN50-NOMINAL", out_dir=tmp_path / "out")
+    assert e.value.key == "control.commands" and "not found" in str(e.value)
+
+
 def test_run_refuses_a_board_that_cannot_be_set(firmware, tmp_path, capsys):
     port = firmware()
     st = tmp_path / "station.toml"
