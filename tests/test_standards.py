@@ -4,7 +4,7 @@
 Sources for the check values (see shared REFERENCES.md):
 * IEC 61672-1:2013 Annex E: weighting constants and the A and C formulas; Table 3
   weighting values and class 1 acceptance limits (secondary: read in a published
-  transcription of the table, not in the standard itself).
+  copy of the table, not in the standard itself).
 * IEC 61260-1:2014: base-ten octave ratio G = 10^(3/10), band edges f_m G^(+-1/2) and the
   class 1 relative-attenuation limits for octave bands (secondary, as above).
 * Butterworth |H|^2 = 1 / (1 + (w/wc)^(2n)), -3.0103 dB at the cutoff; the Butterworth
@@ -49,7 +49,7 @@ C1000 = -0.062   # IEC 61672-1 Annex E
 # exact base-ten frequencies 1000 * 10^(0.1 n) of the octave points (nominal 31.5 Hz .. 16 kHz)
 NOMINAL_HZ = [31.5, 63, 125, 250, 500, 1000, 2000, 4000, 8000, 16000]
 EXACT_HZ = [1000.0 * 10 ** (0.1 * n) for n in range(-15, 13, 3)]
-# IEC 61672-1:2013 Table 3 (secondary transcription), rounded to 0.1 dB
+# IEC 61672-1:2013 Table 3 (secondary source), rounded to 0.1 dB
 TABLE_A_DB = [-39.4, -26.2, -16.1, -8.6, -3.2, 0.0, 1.2, 1.0, -1.1, -6.6]
 TABLE_C_DB = [-3.0, -0.8, -0.2, 0.0, 0.0, 0.0, -0.2, -0.8, -3.0, -8.5]
 CLASS1_UP_DB = [1.5, 1.0, 1.0, 1.0, 1.0, 0.7, 1.0, 1.0, 1.5, 2.5]
@@ -113,7 +113,7 @@ def test_a_weighting_formula_matches_table(i):
 
 @pytest.mark.parametrize("i", range(10), ids=[f"{n}Hz" for n in NOMINAL_HZ])
 def test_c_weighting_formula_matches_table(i):
-    # C-weighting values from the secondary transcription of Table 3
+    # C-weighting values from the secondary source of Table 3
     assert float(c_weighting_db(EXACT_HZ[i])) == pytest.approx(TABLE_C_DB[i], abs=0.05)
 
 
@@ -191,7 +191,7 @@ FM = 1000.0
 EDGE_LO, EDGE_HI = FM * G**-0.5, FM * G**0.5
 JUST = 1e-6   # "just outside" = 1e-6 beyond the edge, as the profile encodes it
 
-# class 1 octave-band relative attenuation limits (secondary transcription)
+# class 1 octave-band relative attenuation limits (secondary source)
 INSIDE_LIMITS = {0: (-0.4, 0.4), 1: (-0.4, 0.5), 2: (-0.4, 0.7), 3: (-0.4, 1.4), 4: (-0.4, 5.3)}   # k in G^(k/8)
 OUTSIDE_MIN = {1: 16.6, 2: 40.5, 3: 60.0}    # n in G^n
 BEYOND_MIN = 70.0                             # G^(+-4) and beyond
