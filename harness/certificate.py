@@ -446,6 +446,12 @@ def render_html(doc: dict, plot_png: bytes | None = None) -> str:
                 f"{e(c['name'])} ({e(c['type'])})" for c in pb["components"]) + ".</p>")
     if pts:
         parts.append("<h2>All points</h2>" + _points_table(pts))
+    sig = doc.get("signature")
+    if isinstance(sig, dict):
+        parts.append(f"<h2>Signature</h2><p class='small'>Signed with {e(str(sig.get('algorithm')))}, station key "
+                     f"fingerprint <span class='mono'>{e(str(sig.get('public_key_fingerprint')))}</span> (SHA-256 of "
+                     "the raw public key). Check it with <span class='mono'>harness verify CERT.json --key "
+                     "STATION.pub</span>; this page itself is not signed, the JSON certificate is.</p>")
     parts.append(f"<h2>Records</h2><p class='small'>Raw capture <span class='mono'>{e(doc['raw']['file'])}</span>, "
                  f"SHA-256 <span class='mono'>{e(doc['raw']['sha256'])}</span>. Profile SHA-256 "
                  f"<span class='mono'>{e(str(doc['profile']['sha256']))}</span>. Every figure above can be recomputed "
