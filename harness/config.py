@@ -193,6 +193,23 @@ class Table:
             out.append(Table(item, self.file, f"{self.key(name)}[{i}]"))
         return out
 
+    def file_or_table(self, name: str, base_dir: Path | str | None, *, load, parse, what: str) -> Any:
+        """A value given either as a file name (relative to `base_dir`) or as an inline
+        table: ``load(path)`` reads the file, ``parse(data, key_path)`` the table.
+        Raises ConfigError for a missing file or another type. `what` names the thing in
+        messages (for example "board command-map")."""
+        raw = self._get(name, _MISSING)
+        if isinstance(raw, str):
+            p = Path(raw)
+            if not p.is_absolute() and base_dir is not None:
+                p = Path(base_dir) / p
+            if not p.is_file():
+                raise self.error(name, f"{what} file not found: {p}")
+            return load(p)
+        if isinstance(raw, dict):
+            return parse(raw, self.key(name))
+        raise self.error(name, "must be a file name or a table")
+
     def float_list(self, name: str, default: Any = _MISSING, *, min: float | None = None,
                    min_exclusive: bool = False, nonempty: bool = True) -> Any:
         value = self._get(name, default)

@@ -172,19 +172,9 @@ def parse_config(table: Table, *, base_dir: Path, station_id: str, backend: str)
     ending = table.str("line_ending", "\n")
     if ending not in LINE_ENDINGS:
         raise table.error("line_ending", 'must be "\\n", "\\r\\n" or "\\r"')
-    raw = table.data.get("commands")
-    if raw is None:
-        cmds = BoardCommands()
-    elif isinstance(raw, str):
-        p = Path(raw)
-        p = p if p.is_absolute() else Path(base_dir) / p
-        if not p.is_file():
-            raise table.error("commands", f"board command-map file not found: {p}")
-        cmds = load_commands(p)
-    elif isinstance(raw, dict):
-        cmds = parse_commands(raw, file=table.file, path=table.key("commands"))
-    else:
-        raise table.error("commands", "must be a file name or a table")
+    cmds = BoardCommands() if not table.has("commands") else table.file_or_table(
+        "commands", base_dir, load=load_commands, what="board command-map",
+        parse=lambda raw, key: parse_commands(raw, file=table.file, path=key))
     return SerialControlConfig(port=port.strip(), commands=cmds,
                                baud=table.int("baud", 115200, min=50, max=20_000_000),
                                timeout_s=table.float("timeout_s", 1.0, min=0.01, max=120.0),

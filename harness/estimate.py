@@ -1402,7 +1402,6 @@ def estimate_stepped_sine(plan, capture, *, four_parameter: bool | None = None,
     notes: list[str] = []
     details: dict = {"blocks": nblk}
     a = r if r is not None else y
-    align = "reference" if r is not None else "response"
     lag0, late = _start(a, s)
     w_nom = 2.0 * np.pi * freq / fs
     # The blocks end before their tone does: converters (and resamplers) with

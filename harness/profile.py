@@ -15,7 +15,6 @@ from pathlib import Path
 import numpy as np
 
 from harness.config import Table, load_toml, sha256_hex
-from harness.errors import ConfigError
 from harness.mask import BAND_KINDS, PHASE_RULES, Band, LimitLine, Mask, PhaseRule
 from harness.units import (
     db_from_gain,
@@ -409,18 +408,9 @@ def _parse_control(t: Table | None, file: str | None) -> ControlConfig:
     if t.has("commands"):
         from harness import control  # the board command-map format lives with board control
 
-        raw = t.data["commands"]
-        if isinstance(raw, str):
-            p = Path(raw)
-            if not p.is_absolute() and file is not None:
-                p = Path(file).resolve().parent / p
-            if not p.is_file():
-                raise t.error("commands", f"board command-map file not found: {p}")
-            commands = control.load_commands(p)
-        elif isinstance(raw, dict):
-            commands = control.parse_commands(raw, file=file, path=t.key("commands"))
-        else:
-            raise t.error("commands", "must be a file name or a table")
+        commands = t.file_or_table(
+            "commands", None if file is None else Path(file).resolve().parent, load=control.load_commands,
+            what="board command-map", parse=lambda raw, key: control.parse_commands(raw, file=file, path=key))
     return ControlConfig(mode=t.str("mode", None), gain_db=t.float("gain_db", None), commands=commands)
 
 

@@ -15,7 +15,7 @@ from harness.analysis import StationFacts, analyze
 from harness.backends.simulated import SimulatedBoard
 from harness.certificate import recompute
 from harness.cli import main
-from harness.device import Imperfections, load_device_model
+from harness.device import load_device_model
 from harness.errors import LevelLimitError
 from harness.measure import measure_unit
 from harness.profile import load_profile

@@ -7,7 +7,6 @@ scipy.signal (the filters' exact responses) and numpy (fixed-point rounding, roo
 """
 
 import json
-import math
 import re
 import shutil
 import textwrap

@@ -3,7 +3,6 @@
 import datetime as dt
 import json
 import os
-from pathlib import Path
 
 import numpy as np
 import pytest

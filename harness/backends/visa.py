@@ -326,21 +326,14 @@ def parse_config(table: Table, *, base_dir: Path, station_id: str, backend: str)
         raise table.error("digitizer", "must be a different resource from the generator")
     if not table.has("commands"):
         raise table.error("commands", "missing key (a command-map file, or an inline table)")
-    raw = table.data["commands"]
-    if isinstance(raw, str):
-        p = Path(raw)
-        p = p if p.is_absolute() else Path(base_dir) / p
-        if not p.is_file():
-            raise table.error("commands", f"command-map file not found: {p}")
-        cmap = load_command_map(p)
-    elif isinstance(raw, dict):
+    def parse_inline(raw, key):
         import hashlib
         import json
 
         digest = hashlib.sha256(json.dumps(raw, sort_keys=True).encode()).hexdigest()
-        cmap = parse_command_map(raw, file=table.file, sha256=digest, path=table.key("commands"))
-    else:
-        raise table.error("commands", "must be a file name or a table")
+        return parse_command_map(raw, file=table.file, sha256=digest, path=key)
+
+    cmap = table.file_or_table("commands", base_dir, load=load_command_map, parse=parse_inline, what="command-map")
     mode = table.str("stepped_sine", "native", choices=STEPPED_MODES)
     if mode == "native" and not cmap.has_native_sine():
         if table.has("stepped_sine"):

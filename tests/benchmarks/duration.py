@@ -28,7 +28,6 @@ plan's dof) gives the shortest setting it PREDICTS would meet the target.
 from __future__ import annotations
 
 import dataclasses
-import math
 
 import numpy as np
 import scipy.fft
